@@ -1,0 +1,33 @@
+//! The stage contract: everything a spikeyard stage needs to read its input
+//! and write its output, and nothing about how any stage computes.
+//!
+//! Map of modules, in data-flow order:
+//! - [`recording`]: the recording description (TOML + raw binary + electrode
+//!   table, fixed by the project's interface contract), validated once, then
+//!   read in chunks with margins through short-lived memory maps.
+//! - [`request`]: the JSON request the orchestrator hands a stage
+//!   (parameters, input artifacts, output folder), and the progress lines a
+//!   stage prints on stderr.
+//! - [`table`]: Parquet writers that write under a temporary name and rename
+//!   only after the footer is written.
+//! - [`noise`]: the MAD noise estimate shared by the QC and detect stages.
+//! - [`hash`]: content hashes for cache keys and manifests.
+//! - [`stage_main`]: the command-line glue every Rust stage shares.
+//!
+//! Conventions, stated once: samples are 0-based frame indices into the
+//! recording; voltages are microvolts (µV) as `f32`; signed amplitudes keep
+//! their sign (a negative trough stays negative); positions are micrometres.
+
+pub mod error;
+pub mod hash;
+pub mod noise;
+pub mod recording;
+pub mod request;
+pub mod stage_main;
+pub mod table;
+pub mod testing;
+
+pub use error::{ContractError, RecordingError};
+pub use recording::{Chunk, Dtype, Electrode, Layout, Recording};
+pub use request::{ProgressReporter, StageReport, StageRequest};
+pub use stage_main::{stage_main, StageFailure};

@@ -1,0 +1,634 @@
+//! Recording descriptions: parse and validate once, then read in chunks.
+//!
+//! A recording is a raw binary file plus a TOML description beside it and an
+//! electrode table (CSV). Relative paths are resolved against the
+//! description's folder when it is loaded. [`Recording::open`] refuses every
+//! description that does not match its data, naming the file and the problem.
+//!
+//! Reading never maps the whole file: each call maps only the byte ranges it
+//! needs and drops the map before returning, so resident memory stays flat
+//! however long the recording is.
+
+use crate::error::RecordingError;
+use serde::Deserialize;
+use std::fs::File;
+use std::path::{Path, PathBuf};
+
+/// Sample types a data file may hold (little-endian).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Dtype {
+    I16,
+    U16,
+    I32,
+    F32,
+    F64,
+}
+
+impl Dtype {
+    pub const NAMES: [&'static str; 5] = ["i16", "u16", "i32", "f32", "f64"];
+
+    pub fn parse(name: &str) -> Option<Self> {
+        Some(match name {
+            "i16" => Dtype::I16,
+            "u16" => Dtype::U16,
+            "i32" => Dtype::I32,
+            "f32" => Dtype::F32,
+            "f64" => Dtype::F64,
+            _ => return None,
+        })
+    }
+
+    pub fn name(self) -> &'static str {
+        match self {
+            Dtype::I16 => "i16",
+            Dtype::U16 => "u16",
+            Dtype::I32 => "i32",
+            Dtype::F32 => "f32",
+            Dtype::F64 => "f64",
+        }
+    }
+
+    pub fn bytes(self) -> usize {
+        match self {
+            Dtype::I16 | Dtype::U16 => 2,
+            Dtype::I32 | Dtype::F32 => 4,
+            Dtype::F64 => 8,
+        }
+    }
+
+    /// Decode one little-endian value at the start of `bytes` as f64.
+    #[inline]
+    fn decode(self, bytes: &[u8]) -> f64 {
+        match self {
+            Dtype::I16 => i16::from_le_bytes([bytes[0], bytes[1]]) as f64,
+            Dtype::U16 => u16::from_le_bytes([bytes[0], bytes[1]]) as f64,
+            Dtype::I32 => i32::from_le_bytes(bytes[..4].try_into().unwrap_or([0; 4])) as f64,
+            Dtype::F32 => f32::from_le_bytes(bytes[..4].try_into().unwrap_or([0; 4])) as f64,
+            Dtype::F64 => f64::from_le_bytes(bytes[..8].try_into().unwrap_or([0; 8])),
+        }
+    }
+}
+
+/// Order of samples in the data file.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Layout {
+    /// t0c0 t0c1 ... t1c0 ...
+    TimeMajor,
+    /// all of c0, then all of c1, ...
+    ChannelMajor,
+}
+
+/// One electrode: the stored channel it records and where it sits.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Electrode {
+    pub channel: usize,
+    pub x_um: f64,
+    pub y_um: f64,
+    /// The `label` column when the table has one.
+    pub label: Option<String>,
+    /// The `group` column when the table has one (e.g. a shank or well).
+    pub group: Option<String>,
+}
+
+/// The description file as written, before validation.
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawDescription {
+    data: String,
+    sample_rate_hz: f64,
+    channels: i64,
+    dtype: String,
+    #[serde(default)]
+    layout: Option<String>,
+    #[serde(default = "one")]
+    microvolts_per_unit: f64,
+    #[serde(default)]
+    offset: f64,
+    electrodes: String,
+}
+
+fn one() -> f64 {
+    1.0
+}
+
+/// A validated recording: every field has been checked against its data.
+#[derive(Debug, Clone)]
+pub struct Recording {
+    /// The description file this was loaded from.
+    pub description_path: PathBuf,
+    /// Absolute or description-relative-resolved path of the raw samples.
+    pub data_path: PathBuf,
+    pub electrodes_path: PathBuf,
+    pub sample_rate_hz: f64,
+    pub n_channels: usize,
+    pub dtype: Dtype,
+    pub layout: Layout,
+    pub microvolts_per_unit: f64,
+    pub offset: f64,
+    pub n_frames: u64,
+    /// One per channel, indexed by channel.
+    pub electrodes: Vec<Electrode>,
+}
+
+/// A piece of the recording to process: the core frames the caller is
+/// responsible for, and the wider range read around them for context.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Chunk {
+    pub index: usize,
+    /// Frames this chunk produces output for: `core_start..core_end`.
+    pub core_start: u64,
+    pub core_end: u64,
+    /// Frames read for context, clipped to the recording.
+    pub read_start: u64,
+    pub read_end: u64,
+}
+
+impl Chunk {
+    pub fn core_frames(&self) -> usize {
+        (self.core_end - self.core_start) as usize
+    }
+    pub fn read_frames(&self) -> usize {
+        (self.read_end - self.read_start) as usize
+    }
+}
+
+impl Recording {
+    /// Load and validate a description, its electrode table and its data size.
+    ///
+    /// # Errors
+    /// A [`RecordingError`] naming the file and the problem for every
+    /// mismatch listed in the interface contract.
+    pub fn open(description_path: &Path) -> Result<Self, RecordingError> {
+        let path = description_path.to_path_buf();
+        let text = std::fs::read_to_string(&path).map_err(|source| RecordingError::Io {
+            path: path.clone(),
+            source,
+        })?;
+        let raw: RawDescription = toml::from_str(&text).map_err(|e| RecordingError::Toml {
+            path: path.clone(),
+            message: one_line(&e.to_string()),
+        })?;
+        let bad = |key: &'static str, value: String, expected: &str| RecordingError::BadValue {
+            path: path.clone(),
+            key,
+            value,
+            expected: expected.to_string(),
+        };
+        if !(raw.sample_rate_hz.is_finite() && raw.sample_rate_hz > 0.0) {
+            return Err(bad(
+                "sample_rate_hz",
+                raw.sample_rate_hz.to_string(),
+                "greater than 0",
+            ));
+        }
+        if raw.channels <= 0 {
+            return Err(bad("channels", raw.channels.to_string(), "at least 1"));
+        }
+        let n_channels = raw.channels as usize;
+        let dtype = Dtype::parse(&raw.dtype).ok_or_else(|| {
+            bad(
+                "dtype",
+                format!("\"{}\"", raw.dtype),
+                &format!("one of {}", Dtype::NAMES.join(", ")),
+            )
+        })?;
+        let layout = match raw.layout.as_deref() {
+            None | Some("time-major") => Layout::TimeMajor,
+            Some("channel-major") => Layout::ChannelMajor,
+            Some(other) => {
+                return Err(bad(
+                    "layout",
+                    format!("\"{other}\""),
+                    "\"time-major\" or \"channel-major\"",
+                ))
+            }
+        };
+        if !(raw.microvolts_per_unit.is_finite() && raw.microvolts_per_unit != 0.0) {
+            return Err(bad(
+                "microvolts_per_unit",
+                raw.microvolts_per_unit.to_string(),
+                "a finite, non-zero number",
+            ));
+        }
+        if !raw.offset.is_finite() {
+            return Err(bad("offset", raw.offset.to_string(), "a finite number"));
+        }
+        let folder = path.parent().unwrap_or(Path::new("."));
+        let data_path = folder.join(&raw.data);
+        let electrodes_path = folder.join(&raw.electrodes);
+        let metadata = match std::fs::metadata(&data_path) {
+            Ok(m) if m.is_file() => m,
+            _ => {
+                return Err(RecordingError::MissingData {
+                    path,
+                    data: data_path,
+                })
+            }
+        };
+        let frame_bytes = (n_channels * dtype.bytes()) as u64;
+        let bytes = metadata.len();
+        if bytes % frame_bytes != 0 {
+            return Err(RecordingError::PartialFrame {
+                path: data_path,
+                bytes,
+                frame_bytes,
+                channels: n_channels,
+                dtype: dtype.name(),
+            });
+        }
+        if bytes == 0 {
+            return Err(RecordingError::EmptyData { path: data_path });
+        }
+        if !electrodes_path.is_file() {
+            return Err(RecordingError::MissingElectrodes {
+                path,
+                electrodes: electrodes_path,
+            });
+        }
+        let electrodes = read_electrodes(&electrodes_path, n_channels)?;
+        Ok(Recording {
+            description_path: path,
+            data_path,
+            electrodes_path,
+            sample_rate_hz: raw.sample_rate_hz,
+            n_channels,
+            dtype,
+            layout,
+            microvolts_per_unit: raw.microvolts_per_unit,
+            offset: raw.offset,
+            n_frames: bytes / frame_bytes,
+            electrodes,
+        })
+    }
+
+    pub fn duration_s(&self) -> f64 {
+        self.n_frames as f64 / self.sample_rate_hz
+    }
+
+    /// Split `0..n_frames` into cores of `chunk_frames` with `margin_frames`
+    /// of context on each side (clipped to the recording).
+    pub fn chunks(&self, chunk_frames: usize, margin_frames: usize) -> Vec<Chunk> {
+        plan_chunks(self.n_frames, chunk_frames, margin_frames)
+    }
+
+    /// Read frames `start..end` as microvolts into `out`, time-major
+    /// (`out[frame * n_channels + channel]`). `out` is resized to fit.
+    ///
+    /// # Errors
+    /// I/O errors mapping the data file, with its path. A range past the end
+    /// of the recording is refused with the same kind of error.
+    pub fn read_frames(
+        &self,
+        start: u64,
+        end: u64,
+        out: &mut Vec<f32>,
+    ) -> Result<(), RecordingError> {
+        let io = |source: std::io::Error| RecordingError::Io {
+            path: self.data_path.clone(),
+            source,
+        };
+        if start > end || end > self.n_frames {
+            return Err(io(std::io::Error::new(
+                std::io::ErrorKind::InvalidInput,
+                format!(
+                    "frames {start}..{end} requested, but the recording has {} frames",
+                    self.n_frames
+                ),
+            )));
+        }
+        let n_frames = (end - start) as usize;
+        let n_channels = self.n_channels;
+        out.clear();
+        out.resize(n_frames * n_channels, 0.0);
+        if n_frames == 0 {
+            return Ok(());
+        }
+        let file = File::open(&self.data_path).map_err(io)?;
+        let item = self.dtype.bytes();
+        let gain = self.microvolts_per_unit;
+        let offset = self.offset;
+        let dtype = self.dtype;
+        let convert = |bytes: &[u8]| ((dtype.decode(bytes) - offset) * gain) as f32;
+        match self.layout {
+            Layout::TimeMajor => {
+                let frame_bytes = n_channels * item;
+                let map = map_range(&file, start * frame_bytes as u64, n_frames * frame_bytes)
+                    .map_err(io)?;
+                if dtype == Dtype::F32 && gain == 1.0 && offset == 0.0 {
+                    // The common case of an already-scaled f32 file (the filter
+                    // stage's own output): a straight copy.
+                    for (value, bytes) in out.iter_mut().zip(map.chunks_exact(4)) {
+                        *value = f32::from_le_bytes([bytes[0], bytes[1], bytes[2], bytes[3]]);
+                    }
+                } else {
+                    for (value, bytes) in out.iter_mut().zip(map.chunks_exact(item)) {
+                        *value = convert(bytes);
+                    }
+                }
+            }
+            Layout::ChannelMajor => {
+                let channel_bytes = self.n_frames * item as u64;
+                for channel in 0..n_channels {
+                    let map = map_range(
+                        &file,
+                        channel as u64 * channel_bytes + start * item as u64,
+                        n_frames * item,
+                    )
+                    .map_err(io)?;
+                    for (frame, bytes) in map.chunks_exact(item).enumerate() {
+                        out[frame * n_channels + channel] = convert(bytes);
+                    }
+                }
+            }
+        }
+        Ok(())
+    }
+}
+
+/// Split `0..n_frames` into chunks; see [`Recording::chunks`].
+pub fn plan_chunks(n_frames: u64, chunk_frames: usize, margin_frames: usize) -> Vec<Chunk> {
+    let chunk_frames = chunk_frames.max(1) as u64;
+    let margin = margin_frames as u64;
+    let mut chunks = Vec::new();
+    let mut core_start = 0u64;
+    while core_start < n_frames {
+        let core_end = (core_start + chunk_frames).min(n_frames);
+        chunks.push(Chunk {
+            index: chunks.len(),
+            core_start,
+            core_end,
+            read_start: core_start.saturating_sub(margin),
+            read_end: (core_end + margin).min(n_frames),
+        });
+        core_start = core_end;
+    }
+    chunks
+}
+
+fn map_range(file: &File, offset: u64, len: usize) -> std::io::Result<memmap2::Mmap> {
+    // SAFETY: the map is read-only and private to this call; a file truncated
+    // underneath a running stage is outside what any reader can defend
+    // against, and the cache hashes inputs before a stage is trusted again.
+    let map = unsafe { memmap2::MmapOptions::new().offset(offset).len(len).map(file)? };
+    #[cfg(unix)]
+    {
+        let _ = map.advise(memmap2::Advice::Sequential);
+    }
+    Ok(map)
+}
+
+fn one_line(message: &str) -> String {
+    message.split_whitespace().collect::<Vec<_>>().join(" ")
+}
+
+/// Read an electrode table: a header with at least `channel,x_um,y_um`
+/// (any order, extra columns tolerated) and one row per stored channel.
+///
+/// # Errors
+/// Missing columns, unparsable or non-finite numbers, channels out of range,
+/// duplicate channels or positions, and channels without a row.
+pub fn read_electrodes(path: &Path, n_channels: usize) -> Result<Vec<Electrode>, RecordingError> {
+    let text = std::fs::read_to_string(path).map_err(|source| RecordingError::Io {
+        path: path.to_path_buf(),
+        source,
+    })?;
+    let table_error = |line: usize, message: String| RecordingError::ElectrodeTable {
+        path: path.to_path_buf(),
+        line,
+        message,
+    };
+    let mut lines = text
+        .lines()
+        .enumerate()
+        .map(|(i, l)| (i + 1, l.trim_end_matches('\r')))
+        .filter(|(_, l)| !l.trim().is_empty());
+    let (header_line, header) = lines
+        .next()
+        .ok_or_else(|| table_error(1, "the table is empty (no header)".into()))?;
+    let columns: Vec<String> = header.split(',').map(|c| c.trim().to_string()).collect();
+    let find = |name: &str| {
+        columns.iter().position(|c| c == name).ok_or_else(|| {
+            table_error(
+                header_line,
+                format!(
+                    "the header has no column {name} (columns: {})",
+                    columns.join(",")
+                ),
+            )
+        })
+    };
+    let (channel_col, x_col, y_col) = (find("channel")?, find("x_um")?, find("y_um")?);
+    let label_col = columns.iter().position(|c| c == "label");
+    let group_col = columns.iter().position(|c| c == "group");
+    let mut slots: Vec<Option<Electrode>> = vec![None; n_channels];
+    let mut listed = 0usize;
+    let mut seen_positions = std::collections::HashMap::new();
+    for (line, row) in lines {
+        let fields: Vec<&str> = row.split(',').map(str::trim).collect();
+        if fields.len() < columns.len() {
+            return Err(table_error(
+                line,
+                format!(
+                    "{} fields, but the header has {}",
+                    fields.len(),
+                    columns.len()
+                ),
+            ));
+        }
+        let channel: usize = fields[channel_col].parse().map_err(|_| {
+            table_error(
+                line,
+                format!(
+                    "channel is \"{}\", but it must be a whole number from 0",
+                    fields[channel_col]
+                ),
+            )
+        })?;
+        let number = |col: usize, name: &str| -> Result<f64, RecordingError> {
+            match fields[col].parse::<f64>() {
+                Ok(v) if v.is_finite() => Ok(v),
+                _ => Err(table_error(
+                    line,
+                    format!("{name} is \"{}\", but it must be a finite number", fields[col]),
+                )),
+            }
+        };
+        let (x_um, y_um) = (number(x_col, "x_um")?, number(y_col, "y_um")?);
+        if channel >= n_channels {
+            return Err(table_error(
+                line,
+                format!("channel {channel} does not exist: the recording has {n_channels} channels (0..{})", n_channels - 1),
+            ));
+        }
+        if slots[channel].is_some() {
+            return Err(table_error(line, format!("channel {channel} is listed twice")));
+        }
+        let key = (x_um.to_bits(), y_um.to_bits());
+        if let Some(other) = seen_positions.insert(key, channel) {
+            return Err(table_error(
+                line,
+                format!("channel {channel} has the same position ({x_um}, {y_um}) µm as channel {other}"),
+            ));
+        }
+        slots[channel] = Some(Electrode {
+            channel,
+            x_um,
+            y_um,
+            label: label_col.map(|c| fields[c].to_string()),
+            group: group_col.map(|c| fields[c].to_string()),
+        });
+        listed += 1;
+    }
+    let mut electrodes = Vec::with_capacity(n_channels);
+    for (channel, slot) in slots.into_iter().enumerate() {
+        match slot {
+            Some(e) => electrodes.push(e),
+            None => {
+                return Err(RecordingError::MissingPosition {
+                    path: path.to_path_buf(),
+                    channel,
+                    listed,
+                    channels: n_channels,
+                })
+            }
+        }
+    }
+    Ok(electrodes)
+}
+
+/// Write an electrode table in the contract's format, with `label` and
+/// `group` columns when any electrode has one.
+pub fn write_electrodes(path: &Path, electrodes: &[Electrode]) -> std::io::Result<()> {
+    let with_label = electrodes.iter().any(|e| e.label.is_some());
+    let with_group = electrodes.iter().any(|e| e.group.is_some());
+    let mut text = String::from("channel,x_um,y_um");
+    text.push_str(if with_label { ",label" } else { "" });
+    text.push_str(if with_group { ",group\n" } else { "\n" });
+    for e in electrodes {
+        text.push_str(&format!("{},{},{}", e.channel, e.x_um, e.y_um));
+        for (present, value) in [(with_label, &e.label), (with_group, &e.group)] {
+            if present {
+                text.push(',');
+                text.push_str(value.as_deref().unwrap_or(""));
+            }
+        }
+        text.push('\n');
+    }
+    std::fs::write(path, text)
+}
+
+/// The fields of a description file, for writers (simulator, filter stage).
+#[derive(Debug, Clone)]
+pub struct DescriptionFields<'a> {
+    /// Data file name, relative to the description.
+    pub data: &'a str,
+    pub sample_rate_hz: f64,
+    pub n_channels: usize,
+    pub dtype: Dtype,
+    pub microvolts_per_unit: f64,
+    pub offset: f64,
+    /// Electrode table name, relative to the description.
+    pub electrodes: &'a str,
+}
+
+impl DescriptionFields<'_> {
+    /// Write the description as TOML (time-major layout).
+    pub fn write(&self, path: &Path) -> std::io::Result<()> {
+        let text = format!(
+            "data = \"{}\"\nsample_rate_hz = {:?}\nchannels = {}\ndtype = \"{}\"\n\
+             layout = \"time-major\"\nmicrovolts_per_unit = {:?}\noffset = {:?}\nelectrodes = \"{}\"\n",
+            self.data,
+            self.sample_rate_hz,
+            self.n_channels,
+            self.dtype.name(),
+            self.microvolts_per_unit,
+            self.offset,
+            self.electrodes
+        );
+        std::fs::write(path, text)
+    }
+}
+
+/// Writes a time-major f32 microvolt recording (data, electrodes and
+/// description) frame block by frame block. The description is written last,
+/// by [`F32RecordingWriter::finish`], so a half-written recording has none.
+pub struct F32RecordingWriter {
+    folder: PathBuf,
+    stem: String,
+    data: std::io::BufWriter<File>,
+    sample_rate_hz: f64,
+    n_channels: usize,
+    frames_written: u64,
+}
+
+impl F32RecordingWriter {
+    /// Start `<folder>/<stem>.bin`, `<stem>.electrodes.csv`; `<stem>.toml` follows at finish.
+    pub fn create(
+        folder: &Path,
+        stem: &str,
+        sample_rate_hz: f64,
+        electrodes: &[Electrode],
+    ) -> std::io::Result<Self> {
+        write_electrodes(&folder.join(format!("{stem}.electrodes.csv")), electrodes)?;
+        let data = File::create(folder.join(format!("{stem}.bin")))?;
+        Ok(F32RecordingWriter {
+            folder: folder.to_path_buf(),
+            stem: stem.to_string(),
+            data: std::io::BufWriter::with_capacity(1 << 20, data),
+            sample_rate_hz,
+            n_channels: electrodes.len(),
+            frames_written: 0,
+        })
+    }
+
+    /// Append time-major frames (`samples.len()` must be a whole number of frames).
+    pub fn write_frames(&mut self, samples: &[f32]) -> std::io::Result<()> {
+        use std::io::Write;
+        debug_assert_eq!(samples.len() % self.n_channels, 0);
+        let mut bytes = Vec::with_capacity(samples.len() * 4);
+        for v in samples {
+            bytes.extend_from_slice(&v.to_le_bytes());
+        }
+        self.data.write_all(&bytes)?;
+        self.frames_written += (samples.len() / self.n_channels) as u64;
+        Ok(())
+    }
+
+    pub fn frames_written(&self) -> u64 {
+        self.frames_written
+    }
+
+    /// Flush the data and write the description; returns its path.
+    pub fn finish(self) -> std::io::Result<PathBuf> {
+        use std::io::Write;
+        let mut data = self.data;
+        data.flush()?;
+        data.get_ref().sync_all()?;
+        let description = self.folder.join(format!("{}.toml", self.stem));
+        DescriptionFields {
+            data: &format!("{}.bin", self.stem),
+            sample_rate_hz: self.sample_rate_hz,
+            n_channels: self.n_channels,
+            dtype: Dtype::F32,
+            microvolts_per_unit: 1.0,
+            offset: 0.0,
+            electrodes: &format!("{}.electrodes.csv", self.stem),
+        }
+        .write(&description)?;
+        Ok(description)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn chunks_cover_the_recording_once() {
+        let chunks = plan_chunks(10, 4, 2);
+        let cores: Vec<_> = chunks.iter().map(|c| (c.core_start, c.core_end)).collect();
+        assert_eq!(cores, vec![(0, 4), (4, 8), (8, 10)]);
+        assert_eq!((chunks[1].read_start, chunks[1].read_end), (2, 10));
+        assert_eq!((chunks[0].read_start, chunks[2].read_end), (0, 10));
+    }
+}

@@ -1,0 +1,411 @@
+//! The filter stage: band-pass, optional notch, common median reference,
+//! and per-channel QC.
+//!
+//! Data flow of [`run`]:
+//! 1. open the raw recording named in the request and check the parameters
+//!    ([`params`]);
+//! 2. design the filter once ([`design`], [`kernel::FilterEngine`]);
+//! 3. QC pass ([`qc`]): windows spread over the recording are filtered and
+//!    measured (MAD noise, RMS, Welch spectrum of the raw signal); channels
+//!    are classified ok / dead / noisy; writes `channel_qc.parquet` and
+//!    `channel_psd.parquet`;
+//! 4. main pass: chunk by chunk (with margins), filter every channel in
+//!    parallel, subtract the median of the usable channels, append to
+//!    `filtered.bin` (f32 µV, time-major), described by `filtered.toml` in
+//!    the contract's recording format, so any later stage reads it with the
+//!    same reader as raw data.
+
+pub mod design;
+pub mod kernel;
+pub mod params;
+pub mod qc;
+
+use arrow_array::{ArrayRef, BooleanArray, Float64Array, Int32Array, RecordBatch, StringArray};
+use arrow_schema::{DataType, Field, Schema};
+use kernel::{FilterEngine, Scratch};
+use params::{FilterParams, Reference, ValidFilterParams};
+use qc::{ChannelStatus, Welch};
+use rayon::prelude::*;
+use spikeyard_contract::recording::F32RecordingWriter;
+use spikeyard_contract::table::{write_table, META_WRITER};
+use spikeyard_contract::{
+    noise, Chunk, ContractError, ProgressReporter, Recording, RecordingError, StageFailure, StageReport,
+    StageRequest,
+};
+use std::sync::Arc;
+
+pub const EXECUTABLE: &str = "spikeyard-filter";
+pub const VERSION: &str = env!("CARGO_PKG_VERSION");
+
+/// File names this stage writes.
+pub const FILTERED_RECORDING: &str = "filtered.toml";
+pub const CHANNEL_QC_TABLE: &str = "channel_qc.parquet";
+pub const CHANNEL_PSD_TABLE: &str = "channel_psd.parquet";
+
+/// Frequency resolution of the QC power spectrum, Hz.
+const PSD_RESOLUTION_HZ: f64 = 10.0;
+
+/// Read frames `chunk.read_start..read_end`, filter every channel, and
+/// leave the chunk's core in `out`, time-major, before any reference.
+///
+/// # Errors
+/// Reading the recording fails.
+pub fn filter_chunk(
+    engine: &FilterEngine,
+    recording: &Recording,
+    chunk: &Chunk,
+    raw: &mut Vec<f32>,
+    out: &mut Vec<f32>,
+) -> Result<(), RecordingError> {
+    recording.read_frames(chunk.read_start, chunk.read_end, raw)?;
+    let n_channels = recording.n_channels;
+    let margin = engine.margin_frames() as u64;
+    let core_offset = (chunk.core_start - chunk.read_start) as usize;
+    let pad_before = margin.saturating_sub(chunk.core_start - chunk.read_start) as usize;
+    let pad_after = margin.saturating_sub(chunk.read_end - chunk.core_end) as usize;
+    let core_frames = chunk.core_frames();
+    let raw: &[f32] = raw;
+    let columns: Vec<Vec<f32>> = (0..n_channels)
+        .into_par_iter()
+        .map_init(
+            || (Scratch::default(), Vec::new()),
+            |(scratch, column), channel| {
+                column.clear();
+                column.extend(raw.iter().skip(channel).step_by(n_channels));
+                let mut filtered = vec![0.0f32; core_frames];
+                engine.filter_channel(column, pad_before, pad_after, core_offset, &mut filtered, scratch);
+                filtered
+            },
+        )
+        .collect();
+    out.clear();
+    out.resize(core_frames * n_channels, 0.0);
+    for (channel, column) in columns.iter().enumerate() {
+        for (frame, v) in column.iter().enumerate() {
+            out[frame * n_channels + channel] = *v;
+        }
+    }
+    Ok(())
+}
+
+/// Per-channel QC figures.
+pub struct ChannelQc {
+    pub noise_mad_uv: Vec<f64>,
+    pub rms_uv: Vec<f64>,
+    /// Mean Welch PSD of the raw signal per channel, µV²/Hz.
+    pub psd: Vec<Vec<f64>>,
+    pub welch: Arc<Welch>,
+    pub status: Vec<ChannelStatus>,
+}
+
+/// Windows of `window_frames` spread evenly over the recording, at most `count`.
+pub fn qc_windows(n_frames: u64, count: usize, window_frames: usize, margin_frames: usize) -> Vec<Chunk> {
+    let length = (window_frames as u64).min(n_frames);
+    let fit = (n_frames / length.max(1)).max(1) as usize;
+    let count = count.min(fit).max(1);
+    (0..count)
+        .map(|i| {
+            let start = if count == 1 { 0 } else { (n_frames - length) * i as u64 / (count as u64 - 1) };
+            Chunk {
+                index: i,
+                core_start: start,
+                core_end: start + length,
+                read_start: start.saturating_sub(margin_frames as u64),
+                read_end: (start + length + margin_frames as u64).min(n_frames),
+            }
+        })
+        .collect()
+}
+
+/// Measure QC on windows spread over the recording.
+///
+/// Noise is the median over windows of each window's MAD estimate, which
+/// keeps memory to one window and is robust to a window with a burst.
+///
+/// # Errors
+/// Reading the recording fails.
+pub fn measure_qc(engine: &FilterEngine, recording: &Recording, params: &ValidFilterParams) -> Result<ChannelQc, RecordingError> {
+    let n_channels = recording.n_channels;
+    let windows = qc_windows(recording.n_frames, params.qc_windows, params.qc_window_frames, engine.margin_frames());
+    let window_frames = windows[0].core_frames();
+    let segment = Welch::segment_for(recording.sample_rate_hz, PSD_RESOLUTION_HZ, window_frames);
+    let welch = Arc::new(Welch::new(segment, recording.sample_rate_hz));
+    let mut window_noise: Vec<Vec<f32>> = vec![Vec::new(); n_channels];
+    let mut sum_squares = vec![0.0f64; n_channels];
+    let mut psd_sums = vec![vec![0.0f64; welch.n_bins()]; n_channels];
+    let mut segments = vec![0usize; n_channels];
+    let (mut raw, mut filtered) = (Vec::new(), Vec::new());
+    for window in &windows {
+        filter_chunk(engine, recording, window, &mut raw, &mut filtered)?;
+        let core_offset = (window.core_start - window.read_start) as usize * n_channels;
+        let raw_core = &raw[core_offset..core_offset + window.core_frames() * n_channels];
+        let filtered: &[f32] = &filtered;
+        let per_channel: Vec<(f64, f64, Vec<f64>, usize)> = (0..n_channels)
+            .into_par_iter()
+            .map(|channel| {
+                let mut column: Vec<f32> = filtered.iter().skip(channel).step_by(n_channels).copied().collect();
+                let squares: f64 = column.iter().map(|&v| (v as f64) * (v as f64)).sum();
+                let sigma = noise::mad_sigma(&mut column);
+                let raw_column: Vec<f32> = raw_core.iter().skip(channel).step_by(n_channels).copied().collect();
+                let mut psd = vec![0.0; welch.n_bins()];
+                let count = welch.accumulate(&raw_column, &mut psd, &mut Vec::new());
+                (sigma, squares, psd, count)
+            })
+            .collect();
+        for (channel, (sigma, squares, psd, count)) in per_channel.into_iter().enumerate() {
+            window_noise[channel].push(sigma as f32);
+            sum_squares[channel] += squares;
+            for (s, p) in psd_sums[channel].iter_mut().zip(psd) {
+                *s += p;
+            }
+            segments[channel] += count;
+        }
+    }
+    let total_frames = (windows.len() * window_frames) as f64;
+    let noise_mad_uv: Vec<f64> = window_noise.iter_mut().map(|w| noise::median_in_place(w)).collect();
+    let rms_uv: Vec<f64> = sum_squares.iter().map(|s| (s / total_frames).sqrt()).collect();
+    let psd = psd_sums
+        .into_iter()
+        .zip(&segments)
+        .map(|(sum, &count)| sum.into_iter().map(|s| s / count.max(1) as f64).collect())
+        .collect();
+    let status = qc::classify(&noise_mad_uv, &rms_uv, params.dead_below_ratio, params.noisy_above_ratio);
+    Ok(ChannelQc { noise_mad_uv, rms_uv, psd, welch, status })
+}
+
+fn qc_tables(recording: &Recording, params: &ValidFilterParams, qc: &ChannelQc) -> (RecordBatch, RecordBatch) {
+    let n = recording.n_channels;
+    let welch = &qc.welch;
+    let band = |low: f64, high: f64| -> ArrayRef {
+        Arc::new(Float64Array::from_iter_values(qc.psd.iter().map(|psd| welch.band_power(psd, low, high))))
+    };
+    let line = params.line_hz;
+    let peak: Vec<f64> = qc
+        .psd
+        .iter()
+        .map(|psd| {
+            let (bin, _) = psd.iter().enumerate().skip(1).fold((0, f64::MIN), |best, (b, &p)| if p > best.1 { (b, p) } else { best });
+            welch.frequency_hz(bin)
+        })
+        .collect();
+    let fields = vec![
+        Field::new("channel", DataType::Int32, false),
+        Field::new("x_um", DataType::Float64, false),
+        Field::new("y_um", DataType::Float64, false),
+        Field::new("noise_mad_uv", DataType::Float64, false),
+        Field::new("rms_uv", DataType::Float64, false),
+        Field::new("line_noise_uv2", DataType::Float64, false),
+        Field::new("power_below_band_uv2", DataType::Float64, false),
+        Field::new("power_in_band_uv2", DataType::Float64, false),
+        Field::new("power_above_band_uv2", DataType::Float64, false),
+        Field::new("peak_frequency_hz", DataType::Float64, false),
+        Field::new("status", DataType::Utf8, false),
+        Field::new("usable", DataType::Boolean, false),
+    ];
+    let columns: Vec<ArrayRef> = vec![
+        Arc::new(Int32Array::from_iter_values((0..n).map(|c| c as i32))),
+        Arc::new(Float64Array::from_iter_values(recording.electrodes.iter().map(|e| e.x_um))),
+        Arc::new(Float64Array::from_iter_values(recording.electrodes.iter().map(|e| e.y_um))),
+        Arc::new(Float64Array::from(qc.noise_mad_uv.clone())),
+        Arc::new(Float64Array::from(qc.rms_uv.clone())),
+        band(line - 2.0, line + 2.0),
+        band(0.5, params.low_hz),
+        band(params.low_hz, params.high_hz),
+        band(params.high_hz, recording.sample_rate_hz),
+        Arc::new(Float64Array::from(peak)),
+        Arc::new(StringArray::from_iter_values(qc.status.iter().map(|s| s.name()))),
+        Arc::new(BooleanArray::from_iter(qc.status.iter().map(|s| Some(*s == ChannelStatus::Ok)))),
+    ];
+    let qc_batch = RecordBatch::try_new(Arc::new(Schema::new(fields)), columns).expect("QC columns match their schema");
+    let bins = welch.n_bins();
+    let psd_fields = vec![
+        Field::new("channel", DataType::Int32, false),
+        Field::new("frequency_hz", DataType::Float64, false),
+        Field::new("psd_uv2_per_hz", DataType::Float64, false),
+    ];
+    let psd_columns: Vec<ArrayRef> = vec![
+        Arc::new(Int32Array::from_iter_values((0..n).flat_map(|c| std::iter::repeat_n(c as i32, bins)))),
+        Arc::new(Float64Array::from_iter_values((0..n).flat_map(|_| (0..bins).map(|b| welch.frequency_hz(b))))),
+        Arc::new(Float64Array::from_iter_values(qc.psd.iter().flatten().copied())),
+    ];
+    let psd_batch = RecordBatch::try_new(Arc::new(Schema::new(psd_fields)), psd_columns).expect("PSD columns match their schema");
+    (qc_batch, psd_batch)
+}
+
+/// Dense group index per channel for the median reference.
+fn reference_groups(recording: &Recording, by_group: bool) -> Vec<usize> {
+    if !by_group {
+        return vec![0; recording.n_channels];
+    }
+    let mut names: Vec<&str> = recording.electrodes.iter().map(|e| e.group.as_deref().unwrap_or("")).collect();
+    names.sort_unstable();
+    names.dedup();
+    recording
+        .electrodes
+        .iter()
+        .map(|e| names.binary_search(&e.group.as_deref().unwrap_or("")).unwrap_or(0))
+        .collect()
+}
+
+/// Run the stage on a request.
+///
+/// # Errors
+/// Bad recording or parameters ([`StageFailure::bad_input`]) or I/O
+/// failures while writing.
+pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
+    let recording = Recording::open(&request.recording).map_err(StageFailure::bad_input)?;
+    let params: FilterParams = request.params().map_err(StageFailure::bad_input)?;
+    let valid = params.check(recording.sample_rate_hz).map_err(|message| {
+        StageFailure::bad_input(ContractError::Param {
+            path: request.path.clone(),
+            key: format!("{}.params", request.stage),
+            message,
+        })
+    })?;
+    let mut report = StageReport::default();
+    for warning in &valid.warnings {
+        report.warn(warning.clone());
+    }
+    let engine = FilterEngine::new(&valid, recording.sample_rate_hz);
+    let output = |e: std::io::Error, name: &str| StageFailure::failed(ContractError::io(request.output(name), e));
+
+    let qc = measure_qc(&engine, &recording, &valid).map_err(StageFailure::failed)?;
+    let usable: Vec<bool> = qc.status.iter().map(|s| *s == ChannelStatus::Ok).collect();
+    let n_usable = usable.iter().filter(|u| **u).count();
+    if n_usable == 0 {
+        report.warn("no channel passed QC; the median reference is off");
+    }
+    let (qc_batch, psd_batch) = qc_tables(&recording, &valid, &qc);
+    let metadata = [
+        (META_WRITER, format!("{EXECUTABLE} {VERSION}")),
+        ("spikeyard.params", serde_json::to_string(&params).unwrap_or_default()),
+    ];
+    write_table(&request.output(CHANNEL_QC_TABLE), &qc_batch, &metadata).map_err(StageFailure::failed)?;
+    write_table(&request.output(CHANNEL_PSD_TABLE), &psd_batch, &metadata).map_err(StageFailure::failed)?;
+
+    let groups = reference_groups(&recording, valid.reference_by_group);
+    let chunk_frames = valid.chunk_frames.max(engine.margin_frames());
+    let chunks = recording.chunks(chunk_frames, engine.margin_frames());
+    let mut writer = F32RecordingWriter::create(&request.output_dir, "filtered", recording.sample_rate_hz, &recording.electrodes)
+        .map_err(|e| output(e, "filtered.bin"))?;
+    let mut progress = ProgressReporter::new(recording.n_frames, "frames");
+    let (mut raw, mut filtered) = (Vec::new(), Vec::new());
+    for chunk in &chunks {
+        filter_chunk(&engine, &recording, chunk, &mut raw, &mut filtered).map_err(StageFailure::failed)?;
+        if valid.reference == Reference::Median && n_usable > 0 {
+            let n_channels = recording.n_channels;
+            filtered
+                .par_chunks_mut(n_channels * 1024)
+                .for_each(|block| kernel::subtract_median_reference(block, n_channels, &groups, &usable));
+        }
+        writer.write_frames(&filtered).map_err(|e| output(e, "filtered.bin"))?;
+        progress.advance(chunk.core_frames() as u64);
+    }
+    writer.finish().map_err(|e| output(e, FILTERED_RECORDING))?;
+
+    let mut sorted_noise: Vec<f32> = qc.noise_mad_uv.iter().map(|&v| v as f32).collect();
+    let count = |status: ChannelStatus| qc.status.iter().filter(|s| **s == status).count();
+    let summary = &mut report.summary;
+    summary.insert("channels".into(), recording.n_channels.into());
+    summary.insert("dead_channels".into(), count(ChannelStatus::Dead).into());
+    summary.insert("noisy_channels".into(), count(ChannelStatus::Noisy).into());
+    summary.insert("median_noise_uv".into(), noise::median_in_place(&mut sorted_noise).into());
+    summary.insert("margin_frames".into(), engine.margin_frames().into());
+    summary.insert("chunk_frames".into(), chunk_frames.into());
+    summary.insert("band_hz".into(), serde_json::json!([valid.low_hz, valid.high_hz]));
+    Ok(report)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use params::Design;
+    use spikeyard_contract::testing::{write_f32_recording, TestRng};
+
+    fn noisy_recording(dir: &std::path::Path, fs: f64, n_channels: usize, seconds: f64) -> Recording {
+        let mut rng = TestRng::new(11);
+        let n = (fs * seconds) as usize;
+        let mut samples = Vec::with_capacity(n * n_channels);
+        for frame in 0..n {
+            let t = frame as f64 / fs;
+            let hum = 40.0 * (2.0 * std::f64::consts::PI * 50.0 * t).sin();
+            for channel in 0..n_channels {
+                let spike = if frame % 2003 == 100 + channel { -150.0 } else { 0.0 };
+                samples.push((10.0 * rng.normal() + hum + spike + 20.0 * channel as f64) as f32);
+            }
+        }
+        let path = write_f32_recording(dir, "noisy", fs, n_channels, 20.0, &samples);
+        Recording::open(&path).unwrap()
+    }
+
+    fn filter_in_chunks(engine: &FilterEngine, recording: &Recording, chunk_frames: usize) -> Vec<f32> {
+        let (mut raw, mut out, mut all) = (Vec::new(), Vec::new(), Vec::new());
+        for chunk in recording.chunks(chunk_frames, engine.margin_frames()) {
+            filter_chunk(engine, recording, &chunk, &mut raw, &mut out).unwrap();
+            all.extend_from_slice(&out);
+        }
+        all
+    }
+
+    // Chunking must not change answers: compare many small chunks (cutting
+    // spikes in two) with one chunk holding the whole signal.
+    #[test]
+    fn chunked_filtering_equals_whole_signal_filtering() {
+        let dir = tempfile::tempdir().unwrap();
+        let fs = 20000.0;
+        let recording = noisy_recording(dir.path(), fs, 3, 4.0);
+        let variants = [
+            FilterParams::default(),
+            FilterParams { notch_hz: 50.0, ..Default::default() },
+            FilterParams { design: Design::Fir, ..Default::default() },
+            FilterParams { band_hz: [100.0, 3000.0], order: 5, ..Default::default() },
+        ];
+        for params in variants {
+            let valid = params.check(fs).unwrap();
+            let engine = FilterEngine::new(&valid, fs);
+            let whole = filter_in_chunks(&engine, &recording, recording.n_frames as usize);
+            let chunked = filter_in_chunks(&engine, &recording, 1777);
+            assert_eq!(whole.len(), chunked.len());
+            let rms = (whole.iter().map(|v| (*v as f64).powi(2)).sum::<f64>() / whole.len() as f64).sqrt();
+            let worst = whole.iter().zip(&chunked).map(|(a, b)| (a - b).abs() as f64).fold(0.0, f64::max);
+            assert!(worst / rms < 1e-4, "{params:?}: worst {worst}, rms {rms}");
+        }
+    }
+
+    /// RMS of the output over whole periods far from the edges, divided by
+    /// the input's.
+    fn zero_phase_gain(frequency_hz: f64, fs: f64) -> f64 {
+        let valid = FilterParams::default().check(fs).unwrap();
+        let engine = FilterEngine::new(&valid, fs);
+        let n = (fs * 2.0) as usize;
+        let input: Vec<f32> = (0..n).map(|i| (2.0 * std::f64::consts::PI * frequency_hz * i as f64 / fs).sin() as f32).collect();
+        let mut out = vec![0.0f32; n];
+        engine.filter_channel(&input, engine.margin_frames(), engine.margin_frames(), 0, &mut out, &mut Scratch::default());
+        // Skip 0.5 s at each end (the slowest pole decays in ≈ 33 samples).
+        let period = fs / frequency_hz;
+        let periods = ((n as f64 - fs) / period).floor();
+        let (start, end) = ((fs * 0.5) as usize, (fs * 0.5 + periods * period).round() as usize);
+        let rms = |x: &[f32]| (x[start..end].iter().map(|v| (*v as f64).powi(2)).sum::<f64>() / (end - start) as f64).sqrt();
+        rms(&out) / rms(&input)
+    }
+
+    // REFERENCES.md F4: zero-phase gain |h|² of butter(3,[300,6000],fs=30000),
+    // via sosfreqz; tolerance 1e-4 because the test sine is f32 and the
+    // window holds whole periods only up to one sample.
+    #[test]
+    fn zero_phase_gains_match_scipy() {
+        for (f, expected) in [(300.0, 0.5), (1000.0, 0.999982378591), (6000.0, 0.5), (50.0, 1.6525738156e-05)] {
+            let gain = zero_phase_gain(f, 30000.0);
+            assert!((gain - expected).abs() < 1e-4 * expected.max(0.01), "{f} Hz: {gain} vs {expected}");
+        }
+    }
+
+    #[test]
+    fn qc_windows_are_spread_and_inside_the_recording() {
+        let windows = qc_windows(100_000, 4, 10_000, 500);
+        let starts: Vec<u64> = windows.iter().map(|w| w.core_start).collect();
+        assert_eq!(starts, vec![0, 30_000, 60_000, 90_000]);
+        assert!(windows.iter().all(|w| w.read_end <= 100_000));
+        assert_eq!(qc_windows(5_000, 4, 10_000, 0).len(), 1);
+    }
+}

@@ -1,0 +1,151 @@
+//! Channel QC: noise by MAD and RMS of the band-passed signal, and a Welch
+//! power spectrum of the raw signal, on windows spread over the recording.
+
+use rustfft::num_complex::Complex64;
+use rustfft::FftPlanner;
+
+/// Welch power spectral density, one-sided, density scaling (µV²/Hz):
+/// periodic Hann window, 50 % overlap, mean removed per segment, segments
+/// averaged. `segment` is a power of two no longer than the signal.
+pub struct Welch {
+    segment: usize,
+    window: Vec<f64>,
+    scale: f64,
+    fft: std::sync::Arc<dyn rustfft::Fft<f64>>,
+    pub sample_rate_hz: f64,
+}
+
+impl Welch {
+    pub fn new(segment: usize, sample_rate_hz: f64) -> Self {
+        let window: Vec<f64> = (0..segment)
+            .map(|n| 0.5 - 0.5 * (2.0 * std::f64::consts::PI * n as f64 / segment as f64).cos())
+            .collect();
+        let power: f64 = window.iter().map(|w| w * w).sum();
+        let fft = FftPlanner::new().plan_fft_forward(segment);
+        Welch { segment, window, scale: 1.0 / (sample_rate_hz * power), fft, sample_rate_hz }
+    }
+
+    /// Segment length for a frequency resolution of about `resolution_hz`,
+    /// capped by the signal length.
+    pub fn segment_for(sample_rate_hz: f64, resolution_hz: f64, max_len: usize) -> usize {
+        let wanted = (sample_rate_hz / resolution_hz).max(16.0) as usize;
+        let mut segment = wanted.next_power_of_two();
+        while segment > max_len && segment > 16 {
+            segment /= 2;
+        }
+        segment
+    }
+
+    pub fn n_bins(&self) -> usize {
+        self.segment / 2 + 1
+    }
+
+    pub fn frequency_hz(&self, bin: usize) -> f64 {
+        bin as f64 * self.sample_rate_hz / self.segment as f64
+    }
+
+    /// Add this signal's segment periodograms into `sum` (length `n_bins`);
+    /// returns how many segments were added.
+    pub fn accumulate(&self, signal: &[f32], sum: &mut [f64], work: &mut Vec<Complex64>) -> usize {
+        let step = self.segment / 2;
+        let mut count = 0;
+        let mut start = 0;
+        while start + self.segment <= signal.len() {
+            let piece = &signal[start..start + self.segment];
+            let mean = piece.iter().map(|&v| v as f64).sum::<f64>() / self.segment as f64;
+            work.clear();
+            work.extend(piece.iter().zip(&self.window).map(|(&v, w)| Complex64::new((v as f64 - mean) * w, 0.0)));
+            self.fft.process(work);
+            let last = self.segment / 2;
+            for (bin, s) in sum.iter_mut().enumerate() {
+                let one_sided = if bin == 0 || bin == last { 1.0 } else { 2.0 };
+                *s += work[bin].norm_sqr() * self.scale * one_sided;
+            }
+            count += 1;
+            start += step;
+        }
+        count
+    }
+
+    /// Power in µV² between two frequencies (bins whose centre lies in [low, high)).
+    pub fn band_power(&self, psd: &[f64], low_hz: f64, high_hz: f64) -> f64 {
+        let df = self.sample_rate_hz / self.segment as f64;
+        psd.iter()
+            .enumerate()
+            .filter(|(bin, _)| {
+                let f = self.frequency_hz(*bin);
+                f >= low_hz && f < high_hz
+            })
+            .map(|(_, p)| p * df)
+            .sum()
+    }
+}
+
+/// A channel's state after QC.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum ChannelStatus {
+    Ok,
+    Dead,
+    Noisy,
+}
+
+impl ChannelStatus {
+    pub fn name(self) -> &'static str {
+        match self {
+            ChannelStatus::Ok => "ok",
+            ChannelStatus::Dead => "dead",
+            ChannelStatus::Noisy => "noisy",
+        }
+    }
+}
+
+/// Classify channels by their noise relative to the array's median noise.
+pub fn classify(noise_uv: &[f64], rms_uv: &[f64], dead_below_ratio: f64, noisy_above_ratio: f64) -> Vec<ChannelStatus> {
+    let mut sorted: Vec<f32> = noise_uv.iter().map(|&v| v as f32).collect();
+    let median = spikeyard_contract::noise::median_in_place(&mut sorted);
+    noise_uv
+        .iter()
+        .zip(rms_uv)
+        .map(|(&noise, &rms)| {
+            if rms == 0.0 || !noise.is_finite() || noise < dead_below_ratio * median {
+                ChannelStatus::Dead
+            } else if noise > noisy_above_ratio * median {
+                ChannelStatus::Noisy
+            } else {
+                ChannelStatus::Ok
+            }
+        })
+        .collect()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    // Parseval: a sine of amplitude A has power A²/2, and the PSD integrates to it.
+    #[test]
+    fn welch_integrates_to_the_signal_power() {
+        let fs = 30000.0;
+        let amplitude = 20.0;
+        let signal: Vec<f32> = (0..60000)
+            .map(|n| (amplitude * (2.0 * std::f64::consts::PI * 1000.0 * n as f64 / fs).sin()) as f32)
+            .collect();
+        let welch = Welch::new(Welch::segment_for(fs, 10.0, signal.len()), fs);
+        let mut sum = vec![0.0; welch.n_bins()];
+        let count = welch.accumulate(&signal, &mut sum, &mut vec![]);
+        let psd: Vec<f64> = sum.iter().map(|s| s / count as f64).collect();
+        let total = welch.band_power(&psd, 0.0, fs);
+        assert!((total - amplitude * amplitude / 2.0).abs() < 0.01 * 200.0, "{total}");
+        let near = welch.band_power(&psd, 980.0, 1020.0);
+        assert!(near > 0.99 * total);
+    }
+
+    #[test]
+    fn dead_and_noisy_channels_are_flagged() {
+        let noise = [10.0, 11.0, 9.0, 1.0, 50.0, 10.0];
+        let rms = [12.0, 13.0, 11.0, 1.2, 60.0, 0.0];
+        let status = classify(&noise, &rms, 0.2, 3.0);
+        use ChannelStatus::*;
+        assert_eq!(status, vec![Ok, Ok, Ok, Dead, Noisy, Dead]);
+    }
+}
