@@ -271,6 +271,28 @@ impl Recording {
         plan_chunks(self.n_frames, chunk_frames, margin_frames)
     }
 
+    /// At most `count` windows of `window_frames` (fewer when the recording
+    /// is short), spread evenly from its start to its end, each with
+    /// `margin_frames` of context. Used to estimate noise and QC figures
+    /// from a bounded sample of a long recording.
+    pub fn spread_windows(&self, count: usize, window_frames: usize, margin_frames: usize) -> Vec<Chunk> {
+        let n_frames = self.n_frames;
+        let length = (window_frames as u64).clamp(1, n_frames);
+        let count = count.clamp(1, (n_frames / length) as usize);
+        (0..count)
+            .map(|i| {
+                let start = if count == 1 { 0 } else { (n_frames - length) * i as u64 / (count as u64 - 1) };
+                Chunk {
+                    index: i,
+                    core_start: start,
+                    core_end: start + length,
+                    read_start: start.saturating_sub(margin_frames as u64),
+                    read_end: (start + length + margin_frames as u64).min(n_frames),
+                }
+            })
+            .collect()
+    }
+
     /// Read frames `start..end` as microvolts into `out`, time-major
     /// (`out[frame * n_channels + channel]`). `out` is resized to fit.
     ///
@@ -630,5 +652,17 @@ mod tests {
         assert_eq!(cores, vec![(0, 4), (4, 8), (8, 10)]);
         assert_eq!((chunks[1].read_start, chunks[1].read_end), (2, 10));
         assert_eq!((chunks[0].read_start, chunks[2].read_end), (0, 10));
+    }
+
+    #[test]
+    fn spread_windows_are_even_and_inside_the_recording() {
+        let dir = tempfile::tempdir().unwrap();
+        let description = crate::testing::write_f32_recording(dir.path(), "r", 1000.0, 1, 10.0, &vec![0.0; 100_000]);
+        let recording = Recording::open(&description).unwrap();
+        let windows = recording.spread_windows(4, 10_000, 500);
+        let starts: Vec<u64> = windows.iter().map(|w| w.core_start).collect();
+        assert_eq!(starts, vec![0, 30_000, 60_000, 90_000]);
+        assert!(windows.iter().all(|w| w.read_end <= 100_000));
+        assert_eq!(recording.spread_windows(4, 200_000, 0).len(), 1);
     }
 }

@@ -72,3 +72,10 @@ pub fn stage_main(
         }
     }
 }
+
+impl From<crate::error::RecordingError> for StageFailure {
+    /// A read error while working (the description was already accepted).
+    fn from(error: crate::error::RecordingError) -> Self {
+        StageFailure::failed(error)
+    }
+}

@@ -98,25 +98,6 @@ pub struct ChannelQc {
     pub status: Vec<ChannelStatus>,
 }
 
-/// Windows of `window_frames` spread evenly over the recording, at most `count`.
-pub fn qc_windows(n_frames: u64, count: usize, window_frames: usize, margin_frames: usize) -> Vec<Chunk> {
-    let length = (window_frames as u64).min(n_frames);
-    let fit = (n_frames / length.max(1)).max(1) as usize;
-    let count = count.min(fit).max(1);
-    (0..count)
-        .map(|i| {
-            let start = if count == 1 { 0 } else { (n_frames - length) * i as u64 / (count as u64 - 1) };
-            Chunk {
-                index: i,
-                core_start: start,
-                core_end: start + length,
-                read_start: start.saturating_sub(margin_frames as u64),
-                read_end: (start + length + margin_frames as u64).min(n_frames),
-            }
-        })
-        .collect()
-}
-
 /// Measure QC on windows spread over the recording.
 ///
 /// Noise is the median over windows of each window's MAD estimate, which
@@ -126,7 +107,7 @@ pub fn qc_windows(n_frames: u64, count: usize, window_frames: usize, margin_fram
 /// Reading the recording fails.
 pub fn measure_qc(engine: &FilterEngine, recording: &Recording, params: &ValidFilterParams) -> Result<ChannelQc, RecordingError> {
     let n_channels = recording.n_channels;
-    let windows = qc_windows(recording.n_frames, params.qc_windows, params.qc_window_frames, engine.margin_frames());
+    let windows = recording.spread_windows(params.qc_windows, params.qc_window_frames, engine.margin_frames());
     let window_frames = windows[0].core_frames();
     let segment = Welch::segment_for(recording.sample_rate_hz, PSD_RESOLUTION_HZ, window_frames);
     let welch = Arc::new(Welch::new(segment, recording.sample_rate_hz));
@@ -398,14 +379,5 @@ mod tests {
             let gain = zero_phase_gain(f, 30000.0);
             assert!((gain - expected).abs() < 1e-4 * expected.max(0.01), "{f} Hz: {gain} vs {expected}");
         }
-    }
-
-    #[test]
-    fn qc_windows_are_spread_and_inside_the_recording() {
-        let windows = qc_windows(100_000, 4, 10_000, 500);
-        let starts: Vec<u64> = windows.iter().map(|w| w.core_start).collect();
-        assert_eq!(starts, vec![0, 30_000, 60_000, 90_000]);
-        assert!(windows.iter().all(|w| w.read_end <= 100_000));
-        assert_eq!(qc_windows(5_000, 4, 10_000, 0).len(), 1);
     }
 }
