@@ -1,0 +1,166 @@
+//! The subcommands of `spikeyard`, callable from tests without a process.
+
+use crate::config::PipelineConfig;
+use crate::plan::{build_plan, hash_recording, Plan};
+use crate::runner::{execute, ProgressMode, RunRecord};
+use crate::simulate::{write_recording, Scenario, SimulatedRecording};
+use crate::truth::{score_detection, DetectionScore, Truth};
+use anyhow::Context;
+use arrow_array::{Float64Array, Int32Array, Int64Array};
+use spikeyard_contract::table::{column, read_table};
+use spikeyard_contract::Recording;
+use std::path::{Path, PathBuf};
+
+/// Plan a run (validating recording and config first).
+///
+/// # Errors
+/// The recording or config is refused, or a stage cannot be found.
+pub fn plan_run(recording: &Path, out: &Path, config: Option<&Path>) -> anyhow::Result<Plan> {
+    let recording = Recording::open(recording)?;
+    let config = PipelineConfig::load(config)?;
+    eprintln!(
+        "recording {}: {} channels, {:.1} s at {} Hz ({})",
+        recording.description_path.display(),
+        recording.n_channels,
+        recording.duration_s(),
+        recording.sample_rate_hz,
+        recording.dtype.name()
+    );
+    let hash = hash_recording(&recording).with_context(|| format!("{}: cannot read to hash it", recording.data_path.display()))?;
+    build_plan(&config, &recording, &hash, out)
+}
+
+/// `spikeyard run`: plan, then run what is not cached.
+///
+/// # Errors
+/// As [`plan_run`] and [`execute`].
+pub fn run(recording: &Path, out: &Path, config: Option<&Path>, dry_run: bool, mode: ProgressMode) -> anyhow::Result<Option<RunRecord>> {
+    let plan = plan_run(recording, out, config)?;
+    eprint!("{}", plan.describe());
+    if dry_run {
+        return Ok(None);
+    }
+    let record = execute(&plan, mode)?;
+    eprintln!("results in {}: {}", out.display(), record.published.join(", "));
+    Ok(Some(record))
+}
+
+/// `spikeyard simulate`.
+///
+/// # Errors
+/// Unknown scenario, or writing fails.
+pub fn simulate(out: &Path, scenario: &str, duration_s: f64, seed: u64) -> anyhow::Result<(Scenario, SimulatedRecording)> {
+    let scenario = Scenario::named(scenario, duration_s, seed)
+        .with_context(|| format!("unknown scenario \"{scenario}\"; known: {}", crate::simulate::SCENARIOS.join(", ")))?;
+    anyhow::ensure!(duration_s.is_finite() && duration_s >= 1.0, "--duration-s is {duration_s}, but it must be at least 1");
+    let written = write_recording(&scenario, out)?;
+    eprintln!(
+        "simulated \"{}\": {} electrodes, {:.0} s at {} Hz, {} units, {} spikes -> {}",
+        scenario.name,
+        scenario.electrodes.len(),
+        scenario.duration_s,
+        scenario.sample_rate_hz,
+        scenario.units.len(),
+        written.spikes.len(),
+        written.description.display()
+    );
+    Ok((scenario, written))
+}
+
+/// Read `events.parquet` as (sample, channel), and `channel_noise.parquet` as σ per channel.
+///
+/// # Errors
+/// The tables are missing or lack the columns.
+pub fn read_events_and_noise(results: &Path) -> anyhow::Result<(Vec<(u64, usize)>, Vec<f64>)> {
+    let events_path = results.join("events.parquet");
+    let mut events = Vec::new();
+    for batch in read_table(&events_path)? {
+        let samples: &Int64Array = column(&events_path, &batch, "sample")?;
+        let channels: &Int32Array = column(&events_path, &batch, "channel")?;
+        events.extend(samples.values().iter().zip(channels.values()).map(|(&s, &c)| (s as u64, c as usize)));
+    }
+    let noise_path = results.join("channel_noise.parquet");
+    let mut noise = Vec::new();
+    for batch in read_table(&noise_path)? {
+        let values: &Float64Array = column(&noise_path, &batch, "noise_uv")?;
+        noise.extend(values.values().iter().copied());
+    }
+    Ok((events, noise))
+}
+
+/// Score a finished run's detections against the simulation it ran on,
+/// with the default filter's band to express amplitudes in σ.
+///
+/// # Errors
+/// The result tables cannot be read.
+pub fn score_run(results: &Path, scenario: &Scenario, simulated: &SimulatedRecording) -> anyhow::Result<DetectionScore> {
+    let (events, noise) = read_events_and_noise(results)?;
+    let valid = spikeyard_filter::params::FilterParams::default().check(scenario.sample_rate_hz).map_err(anyhow::Error::msg)?;
+    let engine = spikeyard_filter::kernel::FilterEngine::new(&valid, scenario.sample_rate_hz);
+    let window_frames = (0.5e-3 * scenario.sample_rate_hz).round() as u64;
+    let truth = Truth { spikes: &simulated.spikes, templates: &simulated.templates, electrodes: &scenario.electrodes };
+    Ok(score_detection(&events, &truth, &noise, &engine, window_frames, 100.0))
+}
+
+/// `spikeyard demo`: simulate, run the default pipeline, print a summary.
+///
+/// # Errors
+/// Any step fails.
+pub fn demo(out: &Path, scenario: &str, duration_s: f64, mode: ProgressMode) -> anyhow::Result<()> {
+    let recording_dir = out.join("recording");
+    let results_dir = out.join("results");
+    let (scenario, simulated) = simulate(&recording_dir, scenario, duration_s, 1)?;
+    let record = run(&simulated.description, &results_dir, None, false, mode)?.context("the demo does not dry-run")?;
+    let score = score_run(&results_dir, &scenario, &simulated)?;
+    println!("\nspikeyard demo: scenario \"{}\", {} electrodes, {:.0} s", scenario.name, scenario.electrodes.len(), scenario.duration_s);
+    println!("  recording:    {}", simulated.description.display());
+    println!("  ground truth: {}, {}", simulated.truth_units.display(), simulated.truth_spikes.display());
+    println!("  results:      {}", results_dir.display());
+    for stage in &record.stages {
+        let figures: Vec<String> = stage.summary.iter().map(|(k, v)| format!("{k}={v}")).collect();
+        println!("  stage {:<8} {:>6.1} s  {:>5.0} MiB  {}", stage.name, stage.wall_seconds, stage.peak_rss_bytes as f64 / (1 << 20) as f64, figures.join(" "));
+    }
+    println!("\n  detection against the simulated truth (±0.5 ms, within 100 µm of the unit's main electrode):");
+    println!("  {:>4} {:>8} {:>13} {:>7} {:>7} {:>7}", "unit", "channel", "amplitude σ", "spikes", "found", "recall");
+    for unit in &score.units {
+        println!("  {:>4} {:>8} {:>13.1} {:>7} {:>7} {:>7.3}", unit.unit, unit.channel, unit.amplitude_sigma, unit.n_truth, unit.n_found, unit.recall());
+    }
+    let strong: Vec<_> = score.units.iter().filter(|u| u.amplitude_sigma >= 5.0).collect();
+    let strong_recall = strong.iter().map(|u| u.n_found).sum::<usize>() as f64 / strong.iter().map(|u| u.n_truth).sum::<usize>().max(1) as f64;
+    println!("  recall of units at ≥ 5 σ: {strong_recall:.3}; precision of all {} events: {:.3}", score.n_events, score.precision());
+    println!("\n  Research software: check results before drawing any conclusion. Not a medical device.");
+    Ok(())
+}
+
+/// Default demo output folder.
+pub fn default_demo_folder() -> PathBuf {
+    PathBuf::from("demo-out")
+}
+
+/// `spikeyard stages`: each built-in stage and the executable that would run.
+pub fn list_stages() -> String {
+    let mut text = String::new();
+    for stage in crate::stages::BUILTIN_STAGES {
+        let place = match crate::stages::find_stage_executable(stage.name, None, Path::new(".")) {
+            Ok(path) => path.display().to_string(),
+            Err(e) => format!("not found ({e})"),
+        };
+        text.push_str(&format!("{:<8} {}\n         {}\n", stage.name, stage.about, place));
+    }
+    text
+}
+
+/// The exit code for an error: bad input (2) or failure (1).
+pub fn exit_code(error: &anyhow::Error) -> u8 {
+    let bad_input = error.chain().any(|cause| {
+        cause.is::<spikeyard_contract::RecordingError>()
+            || cause.is::<crate::config::ConfigError>()
+            || cause.is::<crate::stages::StageNotFound>()
+            || cause.downcast_ref::<crate::runner::StageFailed>().is_some_and(|f| f.bad_input)
+    });
+    if bad_input {
+        crate::EXIT_BAD_INPUT
+    } else {
+        crate::EXIT_FAILED
+    }
+}
