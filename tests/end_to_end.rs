@@ -1,1 +1,351 @@
+//! End to end: `spikeyard run` as a user runs it, on small simulated
+//! recordings, with the tables read back from Parquet.
+//!
+//! Stage executables are found next to the `spikeyard` binary under test,
+//! so run these with `cargo test --workspace`, which builds them all.
 
+use spikeyard::commands::score_run;
+use spikeyard::simulate::{write_recording, Scenario};
+use spikeyard_contract::table::{column, read_table};
+use std::path::{Path, PathBuf};
+use std::process::{Command, Output};
+
+fn spikeyard_binary() -> PathBuf {
+    let binary = PathBuf::from(env!("CARGO_BIN_EXE_spikeyard"));
+    for stage in ["spikeyard-filter", "spikeyard-detect"] {
+        assert!(
+            binary.with_file_name(stage).exists(),
+            "{stage} is not built next to {}; run the tests with `cargo test --workspace`",
+            binary.display()
+        );
+    }
+    binary
+}
+
+fn spikeyard(args: &[&str]) -> Output {
+    Command::new(spikeyard_binary()).args(args).output().expect("spikeyard starts")
+}
+
+fn run(recording: &Path, out: &Path, config: Option<&Path>) -> Output {
+    let mut args = vec!["run", "--recording", recording.to_str().unwrap(), "--out", out.to_str().unwrap()];
+    if let Some(config) = config {
+        args.extend(["--config", config.to_str().unwrap()]);
+    }
+    spikeyard(&args)
+}
+
+fn assert_success(output: &Output) {
+    assert!(output.status.success(), "exit {:?}\nstderr:\n{}", output.status, String::from_utf8_lossy(&output.stderr));
+}
+
+fn stderr(output: &Output) -> String {
+    String::from_utf8_lossy(&output.stderr).into_owned()
+}
+
+/// Which stages the last run actually ran (not taken from the cache).
+fn stages_run(out: &Path) -> Vec<String> {
+    let record: serde_json::Value = serde_json::from_str(&std::fs::read_to_string(out.join("run.json")).unwrap()).unwrap();
+    record["stages"].as_array().unwrap().iter().filter(|s| s["cached"] == false).map(|s| s["name"].as_str().unwrap().to_string()).collect()
+}
+
+fn default_config_with(replace: &str, with: &str) -> String {
+    let text = spikeyard::config::DEFAULT_CONFIG;
+    assert!(text.contains(replace), "the default config has no line {replace}");
+    text.replacen(replace, with, 1)
+}
+
+// Issue 2: on the simulator's ground truth, detection recall and precision
+// ≥ 0.95 for units whose amplitude is ≥ 5 σ (matching window ±0.5 ms,
+// within 100 µm; see truth.rs).
+#[test]
+fn detection_on_the_default_scenario_finds_every_unit_above_five_sigma() {
+    let dir = tempfile::tempdir().unwrap();
+    let scenario = Scenario::sparse_grid(30.0, 4);
+    let simulated = write_recording(&scenario, &dir.path().join("rec")).unwrap();
+    let out = dir.path().join("out");
+    assert_success(&run(&simulated.description, &out, None));
+    let score = score_run(&out, &scenario, &simulated).unwrap();
+    let strong: Vec<_> = score.units.iter().filter(|u| u.amplitude_sigma >= 5.0).collect();
+    assert!(strong.len() >= 8, "{:?}", score.units);
+    for unit in &strong {
+        assert!(unit.recall() >= 0.95, "unit {} at {:.1} σ: recall {:.3}", unit.unit, unit.amplitude_sigma, unit.recall());
+    }
+    assert!(score.precision() >= 0.95, "precision {:.3} of {} events", score.precision(), score.n_events);
+    // The QC found the simulated dead (7) and noisy (42) channels.
+    let qc_path = out.join("channel_qc.parquet");
+    let qc = &read_table(&qc_path).unwrap()[0];
+    let status: &arrow_array::StringArray = column(&qc_path, qc, "status").unwrap();
+    assert_eq!(status.value(7), "dead");
+    assert_eq!(status.value(42), "noisy");
+    assert_eq!(status.iter().filter(|s| *s == Some("ok")).count(), 62);
+}
+
+#[test]
+fn events_table_has_the_documented_schema() {
+    let dir = tempfile::tempdir().unwrap();
+    let simulated = write_recording(&Scenario::sparse_grid(3.0, 2), &dir.path().join("rec")).unwrap();
+    let out = dir.path().join("out");
+    assert_success(&run(&simulated.description, &out, None));
+    let path = out.join("events.parquet");
+    let batches = read_table(&path).unwrap();
+    let schema = batches[0].schema();
+    let columns: Vec<(String, String)> = schema.fields().iter().map(|f| (f.name().clone(), f.data_type().to_string())).collect();
+    let expected = [("sample", "Int64"), ("time_s", "Float64"), ("channel", "Int32"), ("amplitude_uv", "Float32"), ("amplitude_sigma", "Float32")];
+    assert_eq!(columns, expected.map(|(a, b)| (a.to_string(), b.to_string())).to_vec());
+    let batch = &batches[0];
+    let samples: &arrow_array::Int64Array = column(&path, batch, "sample").unwrap();
+    let times: &arrow_array::Float64Array = column(&path, batch, "time_s").unwrap();
+    let amplitudes: &arrow_array::Float32Array = column(&path, batch, "amplitude_sigma").unwrap();
+    for i in 0..batch.num_rows() {
+        assert!((times.value(i) - samples.value(i) as f64 / 20000.0).abs() < 1e-12);
+        assert!(amplitudes.value(i) <= -5.0, "a negative-polarity event above threshold");
+    }
+}
+
+// Issue 2: a second run skips every stage; changing a filter parameter
+// re-runs filter and detect; changing a detect parameter re-runs detect only.
+#[test]
+fn cache_reruns_exactly_the_changed_stage_and_what_follows() {
+    let dir = tempfile::tempdir().unwrap();
+    let simulated = write_recording(&Scenario::sparse_grid(4.0, 3), &dir.path().join("rec")).unwrap();
+    let out = dir.path().join("out");
+    assert_success(&run(&simulated.description, &out, None));
+    assert_eq!(stages_run(&out), ["filter", "detect"]);
+    let events_before = std::fs::read(out.join("events.parquet")).unwrap();
+
+    let second = run(&simulated.description, &out, None);
+    assert_success(&second);
+    assert!(stages_run(&out).is_empty());
+    assert!(stderr(&second).contains("up to date"));
+    assert_eq!(std::fs::read(out.join("events.parquet")).unwrap(), events_before);
+
+    let config = dir.path().join("order4.toml");
+    std::fs::write(&config, default_config_with("order = 3", "order = 4")).unwrap();
+    assert_success(&run(&simulated.description, &out, Some(&config)));
+    assert_eq!(stages_run(&out), ["filter", "detect"]);
+
+    let config = dir.path().join("threshold.toml");
+    std::fs::write(&config, default_config_with("order = 3", "order = 4").replace("threshold_sigma = 5.0", "threshold_sigma = 5.5")).unwrap();
+    assert_success(&run(&simulated.description, &out, Some(&config)));
+    assert_eq!(stages_run(&out), ["detect"]);
+
+    // The manifest records what went in and what came out.
+    let manifest: serde_json::Value = serde_json::from_str(&std::fs::read_to_string(out.join("stages/detect/manifest.json")).unwrap()).unwrap();
+    assert_eq!(manifest["params"]["threshold_sigma"], 5.5);
+    assert!(manifest["outputs"].as_array().unwrap().iter().any(|o| o["file"] == "events.parquet" && o["blake3"].as_str().unwrap().len() == 64));
+    assert!(manifest["peak_rss_bytes"].as_u64().unwrap() > 0);
+    assert!(manifest["stage_version"].as_str().unwrap().starts_with("spikeyard-detect"));
+
+    // Changed content (not timestamps) invalidates the cache.
+    let data = simulated.description.with_file_name("recording.bin");
+    let mut bytes = std::fs::read(&data).unwrap();
+    bytes[1001] ^= 0x40;
+    std::fs::write(&data, bytes).unwrap();
+    assert_success(&run(&simulated.description, &out, Some(&config)));
+    assert_eq!(stages_run(&out), ["filter", "detect"]);
+}
+
+// STYLE.md §5 and the brief: the same inputs give the same tables whatever the thread count.
+#[test]
+fn tables_are_byte_identical_for_one_and_two_threads() {
+    let dir = tempfile::tempdir().unwrap();
+    let simulated = write_recording(&Scenario::dense_axons(3.0, 5), &dir.path().join("rec")).unwrap();
+    let mut outputs = Vec::new();
+    for threads in [1, 2] {
+        let config = dir.path().join(format!("threads{threads}.toml"));
+        std::fs::write(&config, default_config_with("threads = 0", &format!("threads = {threads}"))).unwrap();
+        let out = dir.path().join(format!("out{threads}"));
+        assert_success(&run(&simulated.description, &out, Some(&config)));
+        outputs.push(out);
+    }
+    for table in ["events.parquet", "channel_qc.parquet", "channel_noise.parquet", "stages/filter/filtered.bin"] {
+        let a = std::fs::read(outputs[0].join(table)).unwrap();
+        let b = std::fs::read(outputs[1].join(table)).unwrap();
+        assert!(a == b, "{table} differs between 1 and 2 threads");
+    }
+}
+
+/// A valid small recording to break in one way per case.
+fn write_valid(dir: &Path) -> PathBuf {
+    let samples: Vec<u8> = (0..2000u32 * 4).flat_map(|i| ((i % 97) as i16 - 48).to_le_bytes()).collect();
+    std::fs::write(dir.join("array.bin"), samples).unwrap();
+    std::fs::write(dir.join("electrodes.csv"), "channel,x_um,y_um,label\n0,0,0,a\n1,200,0,b\n2,0,200,c\n3,200,200,d\n").unwrap();
+    let description = dir.join("rec.toml");
+    std::fs::write(&description, VALID_DESCRIPTION).unwrap();
+    description
+}
+
+const VALID_DESCRIPTION: &str = "data = \"array.bin\"\nsample_rate_hz = 20000.0\nchannels = 4\ndtype = \"i16\"\nlayout = \"time-major\"\nmicrovolts_per_unit = 0.195\noffset = 0\nelectrodes = \"electrodes.csv\"\n";
+
+// CONTRACT.md §1: each invalid description is refused naming the file and
+// the problem, with a non-zero exit and nothing presented as complete.
+#[test]
+fn invalid_recordings_are_refused_with_the_file_and_the_problem() {
+    type Breaker = fn(&Path);
+    let cases: Vec<(&str, Breaker, &str, &str)> = vec![
+        ("partial frame", |d| {
+            let mut bytes = std::fs::read(d.join("array.bin")).unwrap();
+            bytes.push(0);
+            std::fs::write(d.join("array.bin"), bytes).unwrap();
+        }, "array.bin", "not a whole number of 8-byte frames"),
+        ("channel without position", |d| std::fs::write(d.join("electrodes.csv"), "channel,x_um,y_um\n0,0,0\n1,200,0\n3,200,200\n").unwrap(), "electrodes.csv", "channel 2 has no position"),
+        ("unknown dtype", |d| std::fs::write(d.join("rec.toml"), VALID_DESCRIPTION.replace("\"i16\"", "\"int12\"")).unwrap(), "rec.toml", "dtype is \"int12\""),
+        ("non-positive rate", |d| std::fs::write(d.join("rec.toml"), VALID_DESCRIPTION.replace("20000.0", "-20000.0")).unwrap(), "rec.toml", "sample_rate_hz is -20000, but it must be greater than 0"),
+        ("zero rate", |d| std::fs::write(d.join("rec.toml"), VALID_DESCRIPTION.replace("20000.0", "0.0")).unwrap(), "rec.toml", "sample_rate_hz is 0"),
+        ("missing data file", |d| std::fs::remove_file(d.join("array.bin")).unwrap(), "rec.toml", "data file"),
+        ("missing electrode table", |d| std::fs::remove_file(d.join("electrodes.csv")).unwrap(), "rec.toml", "electrode table"),
+        ("empty data file", |d| std::fs::write(d.join("array.bin"), b"").unwrap(), "array.bin", "empty"),
+        ("zero channels", |d| std::fs::write(d.join("rec.toml"), VALID_DESCRIPTION.replace("channels = 4", "channels = 0")).unwrap(), "rec.toml", "channels is 0"),
+        ("duplicate channel", |d| std::fs::write(d.join("electrodes.csv"), "channel,x_um,y_um\n0,0,0\n1,200,0\n1,0,200\n3,200,200\n").unwrap(), "electrodes.csv", "listed twice"),
+        ("missing column", |d| std::fs::write(d.join("electrodes.csv"), "channel,x_um\n0,0\n1,200\n2,0\n3,200\n").unwrap(), "electrodes.csv", "no column y_um"),
+        ("unknown layout", |d| std::fs::write(d.join("rec.toml"), VALID_DESCRIPTION.replace("time-major", "row-major")).unwrap(), "rec.toml", "layout"),
+        ("not TOML", |d| std::fs::write(d.join("rec.toml"), "data = \n").unwrap(), "rec.toml", ""),
+    ];
+    for (name, breaker, file, problem) in cases {
+        let dir = tempfile::tempdir().unwrap();
+        let description = write_valid(dir.path());
+        breaker(dir.path());
+        let out = dir.path().join("out");
+        let output = run(&description, &out, None);
+        let message = stderr(&output);
+        assert_eq!(output.status.code(), Some(2), "{name}: {message}");
+        assert!(message.contains(file) && message.contains(problem), "{name}: {message}");
+        assert!(!message.contains("panicked"), "{name}: {message}");
+        assert!(!out.join("run.json").exists() && !out.join("events.parquet").exists(), "{name}");
+    }
+}
+
+#[test]
+fn valid_description_variants_are_accepted() {
+    let dir = tempfile::tempdir().unwrap();
+    let description = write_valid(dir.path());
+    let recording = spikeyard_contract::Recording::open(&description).unwrap();
+    assert_eq!((recording.n_frames, recording.n_channels), (2000, 4));
+    let mut frames = Vec::new();
+    recording.read_frames(1, 2, &mut frames).unwrap();
+    // Frame 1 holds stored values 4..8 → (v % 97 − 48) · 0.195 µV.
+    let expected: Vec<f32> = (4..8).map(|v| ((v % 97 - 48) as f64 * 0.195) as f32).collect();
+    assert_eq!(frames, expected);
+}
+
+#[test]
+fn unknown_config_key_and_bad_parameter_are_refused_before_anything_runs() {
+    let dir = tempfile::tempdir().unwrap();
+    let description = write_valid(dir.path());
+    let config = dir.path().join("typo.toml");
+    std::fs::write(&config, default_config_with("threshold_sigma = 5.0", "threshold_sigm = 5.0")).unwrap();
+    let output = run(&description, &dir.path().join("out"), Some(&config));
+    assert_eq!(output.status.code(), Some(2));
+    assert!(stderr(&output).contains("typo.toml") && stderr(&output).contains("threshold_sigm"), "{}", stderr(&output));
+    assert!(!dir.path().join("out/stages/filter").exists(), "nothing ran");
+
+    std::fs::write(&config, default_config_with("order = 3", "order = 12")).unwrap();
+    let output = run(&description, &dir.path().join("out"), Some(&config));
+    assert_eq!(output.status.code(), Some(2));
+    assert!(stderr(&output).contains("order is 12, but it must be 1 to 8"), "{}", stderr(&output));
+}
+
+#[test]
+fn missing_stage_names_the_executable_searched_for_and_the_closest_stage() {
+    let dir = tempfile::tempdir().unwrap();
+    let description = write_valid(dir.path());
+    let config = dir.path().join("c.toml");
+    std::fs::write(&config, "[[stage]]\nname = \"fliter\"\n").unwrap();
+    let output = run(&description, &dir.path().join("out"), Some(&config));
+    assert_eq!(output.status.code(), Some(2));
+    let message = stderr(&output);
+    assert!(message.contains("spikeyard-fliter") && message.contains("did you mean stage \"filter\""), "{message}");
+}
+
+fn write_script(path: &Path, text: &str) {
+    use std::os::unix::fs::PermissionsExt;
+    std::fs::write(path, text).unwrap();
+    std::fs::set_permissions(path, std::fs::Permissions::from_mode(0o755)).unwrap();
+}
+
+#[test]
+fn failing_stage_shows_its_command_and_output_and_keeps_earlier_results() {
+    let dir = tempfile::tempdir().unwrap();
+    let description = write_valid(dir.path());
+    write_script(&dir.path().join("broken.sh"), "#!/bin/sh\necho 'reading the request' >&2\necho 'the lamp is out of oil' >&2\nexit 3\n");
+    let config = dir.path().join("c.toml");
+    std::fs::write(&config, "[[stage]]\nname = \"filter\"\n[[stage]]\nname = \"lamp\"\nexec = \"./broken.sh\"\n").unwrap();
+    let out = dir.path().join("out");
+    let output = run(&description, &out, Some(&config));
+    let message = stderr(&output);
+    assert_eq!(output.status.code(), Some(1), "{message}");
+    assert!(message.contains("stage lamp failed with exit code 3"), "{message}");
+    assert!(message.contains("broken.sh --request"), "{message}");
+    assert!(message.contains("the lamp is out of oil"), "{message}");
+    assert!(out.join("stages/filter/manifest.json").exists(), "the filter's finished result is kept");
+    assert!(!out.join("stages/lamp").exists() && !out.join("run.json").exists());
+    // The rerun resumes: the filter is reused.
+    let output = run(&description, &out, Some(&config));
+    assert!(stderr(&output).contains("[filter] up to date"), "{}", stderr(&output));
+}
+
+#[test]
+fn stage_that_writes_nothing_is_a_failure() {
+    let dir = tempfile::tempdir().unwrap();
+    let description = write_valid(dir.path());
+    write_script(&dir.path().join("idle.sh"), "#!/bin/sh\nexit 0\n");
+    let config = dir.path().join("c.toml");
+    std::fs::write(&config, "[[stage]]\nname = \"idle\"\nexec = \"./idle.sh\"\n").unwrap();
+    let output = run(&description, &dir.path().join("out"), Some(&config));
+    assert_eq!(output.status.code(), Some(1));
+    assert!(stderr(&output).contains("wrote no output"), "{}", stderr(&output));
+}
+
+const PYTHON_STAGE: &str = r#"#!/usr/bin/env python3
+# A stage in another language: read the request, read the filtered
+# recording's description, write a small summary.
+import json, sys, tomllib, struct, os
+request = json.load(open(sys.argv[sys.argv.index("--request") + 1]))
+filtered = request["artifacts"]["filtered.toml"]
+with open(filtered, "rb") as f:
+    description = tomllib.load(f)
+data = os.path.join(os.path.dirname(filtered), description["data"])
+channels = description["channels"]
+frames = os.path.getsize(data) // (4 * channels)
+with open(data, "rb") as f:
+    first = struct.unpack("<%df" % channels, f.read(4 * channels))
+print("spikeyard:progress 1 1 frames", file=sys.stderr)
+summary = {"channels": channels, "frames": frames, "first_frame_uv": list(first),
+           "scale": request["params"]["scale"], "events_seen": "events.parquet" in request["artifacts"]}
+with open(os.path.join(request["output_dir"], "summary.json"), "w") as f:
+    json.dump(summary, f)
+"#;
+
+// Issue 2: the contract lets a stage be written in another language.
+#[test]
+fn python_stage_reads_the_request_and_earlier_outputs() {
+    if Command::new("python3").arg("-c").arg("import tomllib").output().map_or(true, |o| !o.status.success()) {
+        eprintln!("skipped: python3 with tomllib (Python ≥ 3.11) is not installed, so the script-stage test cannot run");
+        return;
+    }
+    let dir = tempfile::tempdir().unwrap();
+    let description = write_valid(dir.path());
+    write_script(&dir.path().join("summarise.py"), PYTHON_STAGE);
+    let config = dir.path().join("c.toml");
+    std::fs::write(&config, "[[stage]]\nname = \"filter\"\n[[stage]]\nname = \"detect\"\n[[stage]]\nname = \"summary\"\nexec = \"./summarise.py\"\n[stage.params]\nscale = 2.5\n").unwrap();
+    let out = dir.path().join("out");
+    assert_success(&run(&description, &out, Some(&config)));
+    let summary: serde_json::Value = serde_json::from_str(&std::fs::read_to_string(out.join("stages/summary/summary.json")).unwrap()).unwrap();
+    assert_eq!(summary["channels"], 4);
+    assert_eq!(summary["frames"], 2000);
+    assert_eq!(summary["scale"], 2.5);
+    assert_eq!(summary["events_seen"], true);
+    assert!(out.join("stages/summary/manifest.json").exists());
+}
+
+#[test]
+fn dry_run_shows_the_plan_and_runs_nothing() {
+    let dir = tempfile::tempdir().unwrap();
+    let description = write_valid(dir.path());
+    let out = dir.path().join("out");
+    let output = spikeyard(&["run", "--recording", description.to_str().unwrap(), "--out", out.to_str().unwrap(), "--dry-run"]);
+    assert_success(&output);
+    let message = stderr(&output);
+    assert!(message.contains("1. filter") && message.contains("2. detect") && message.contains("run"), "{message}");
+    assert!(!out.join("stages").exists());
+}

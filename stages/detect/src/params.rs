@@ -27,7 +27,7 @@ pub struct DetectParams {
     pub peak_search_ms: f64,
     /// Events on electrodes closer than this (µm) and closer in time than
     /// `merge_window_ms` are one spike, kept on the electrode of largest |amplitude|;
-    /// 0 turns merging off. Default 60.
+    /// 0 turns merging off. Default 100.
     pub merge_radius_um: f64,
     /// See `merge_radius_um`, ms. Default 0.4.
     pub merge_window_ms: f64,
@@ -48,7 +48,7 @@ impl Default for DetectParams {
             polarity: Polarity::Negative,
             dead_time_ms: 1.0,
             peak_search_ms: 0.5,
-            merge_radius_um: 60.0,
+            merge_radius_um: 100.0,
             merge_window_ms: 0.4,
             noise_windows: 10,
             noise_window_seconds: 1.0,
