@@ -44,8 +44,15 @@ fn stderr(output: &Output) -> String {
 
 /// Which stages the last run actually ran (not taken from the cache).
 fn stages_run(out: &Path) -> Vec<String> {
-    let record: serde_json::Value = serde_json::from_str(&std::fs::read_to_string(out.join("run.json")).unwrap()).unwrap();
-    record["stages"].as_array().unwrap().iter().filter(|s| s["cached"] == false).map(|s| s["name"].as_str().unwrap().to_string()).collect()
+    let record: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(out.join("run.json")).unwrap()).unwrap();
+    record["stages"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter(|s| s["cached"] == false)
+        .map(|s| s["name"].as_str().unwrap().to_string())
+        .collect()
 }
 
 fn default_config_with(replace: &str, with: &str) -> String {
@@ -68,7 +75,13 @@ fn detection_on_the_default_scenario_finds_every_unit_above_five_sigma() {
     let strong: Vec<_> = score.units.iter().filter(|u| u.amplitude_sigma >= 5.0).collect();
     assert!(strong.len() >= 8, "{:?}", score.units);
     for unit in &strong {
-        assert!(unit.recall() >= 0.95, "unit {} at {:.1} σ: recall {:.3}", unit.unit, unit.amplitude_sigma, unit.recall());
+        assert!(
+            unit.recall() >= 0.95,
+            "unit {} at {:.1} σ: recall {:.3}",
+            unit.unit,
+            unit.amplitude_sigma,
+            unit.recall()
+        );
     }
     assert!(score.precision() >= 0.95, "precision {:.3} of {} events", score.precision(), score.n_events);
     // The QC found the simulated dead (7) and noisy (42) channels.
@@ -89,8 +102,15 @@ fn events_table_has_the_documented_schema() {
     let path = out.join("events.parquet");
     let batches = read_table(&path).unwrap();
     let schema = batches[0].schema();
-    let columns: Vec<(String, String)> = schema.fields().iter().map(|f| (f.name().clone(), f.data_type().to_string())).collect();
-    let expected = [("sample", "Int64"), ("time_s", "Float64"), ("channel", "Int32"), ("amplitude_uv", "Float32"), ("amplitude_sigma", "Float32")];
+    let columns: Vec<(String, String)> =
+        schema.fields().iter().map(|f| (f.name().clone(), f.data_type().to_string())).collect();
+    let expected = [
+        ("sample", "Int64"),
+        ("time_s", "Float64"),
+        ("channel", "Int32"),
+        ("amplitude_uv", "Float32"),
+        ("amplitude_sigma", "Float32"),
+    ];
     assert_eq!(columns, expected.map(|(a, b)| (a.to_string(), b.to_string())).to_vec());
     let batch = &batches[0];
     let samples: &arrow_array::Int64Array = column(&path, batch, "sample").unwrap();
@@ -125,14 +145,23 @@ fn cache_reruns_exactly_the_changed_stage_and_what_follows() {
     assert_eq!(stages_run(&out), ["filter", "detect"]);
 
     let config = dir.path().join("threshold.toml");
-    std::fs::write(&config, default_config_with("order = 3", "order = 4").replace("threshold_sigma = 5.0", "threshold_sigma = 5.5")).unwrap();
+    std::fs::write(
+        &config,
+        default_config_with("order = 3", "order = 4").replace("threshold_sigma = 5.0", "threshold_sigma = 5.5"),
+    )
+    .unwrap();
     assert_success(&run(&simulated.description, &out, Some(&config)));
     assert_eq!(stages_run(&out), ["detect"]);
 
     // The manifest records what went in and what came out.
-    let manifest: serde_json::Value = serde_json::from_str(&std::fs::read_to_string(out.join("stages/detect/manifest.json")).unwrap()).unwrap();
+    let manifest: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(out.join("stages/detect/manifest.json")).unwrap()).unwrap();
     assert_eq!(manifest["params"]["threshold_sigma"], 5.5);
-    assert!(manifest["outputs"].as_array().unwrap().iter().any(|o| o["file"] == "events.parquet" && o["blake3"].as_str().unwrap().len() == 64));
+    assert!(manifest["outputs"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .any(|o| o["file"] == "events.parquet" && o["blake3"].as_str().unwrap().len() == 64));
     assert!(manifest["peak_rss_bytes"].as_u64().unwrap() > 0);
     assert!(manifest["stage_version"].as_str().unwrap().starts_with("spikeyard-detect"));
 
@@ -169,7 +198,8 @@ fn tables_are_byte_identical_for_one_and_two_threads() {
 fn write_valid(dir: &Path) -> PathBuf {
     let samples: Vec<u8> = (0..2000u32 * 4).flat_map(|i| ((i % 97) as i16 - 48).to_le_bytes()).collect();
     std::fs::write(dir.join("array.bin"), samples).unwrap();
-    std::fs::write(dir.join("electrodes.csv"), "channel,x_um,y_um,label\n0,0,0,a\n1,200,0,b\n2,0,200,c\n3,200,200,d\n").unwrap();
+    std::fs::write(dir.join("electrodes.csv"), "channel,x_um,y_um,label\n0,0,0,a\n1,200,0,b\n2,0,200,c\n3,200,200,d\n")
+        .unwrap();
     let description = dir.join("rec.toml");
     std::fs::write(&description, VALID_DESCRIPTION).unwrap();
     description
@@ -183,22 +213,75 @@ const VALID_DESCRIPTION: &str = "data = \"array.bin\"\nsample_rate_hz = 20000.0\
 fn invalid_recordings_are_refused_with_the_file_and_the_problem() {
     type Breaker = fn(&Path);
     let cases: Vec<(&str, Breaker, &str, &str)> = vec![
-        ("partial frame", |d| {
-            let mut bytes = std::fs::read(d.join("array.bin")).unwrap();
-            bytes.push(0);
-            std::fs::write(d.join("array.bin"), bytes).unwrap();
-        }, "array.bin", "not a whole number of 8-byte frames"),
-        ("channel without position", |d| std::fs::write(d.join("electrodes.csv"), "channel,x_um,y_um\n0,0,0\n1,200,0\n3,200,200\n").unwrap(), "electrodes.csv", "channel 2 has no position"),
-        ("unknown dtype", |d| std::fs::write(d.join("rec.toml"), VALID_DESCRIPTION.replace("\"i16\"", "\"int12\"")).unwrap(), "rec.toml", "dtype is \"int12\""),
-        ("non-positive rate", |d| std::fs::write(d.join("rec.toml"), VALID_DESCRIPTION.replace("20000.0", "-20000.0")).unwrap(), "rec.toml", "sample_rate_hz is -20000, but it must be greater than 0"),
-        ("zero rate", |d| std::fs::write(d.join("rec.toml"), VALID_DESCRIPTION.replace("20000.0", "0.0")).unwrap(), "rec.toml", "sample_rate_hz is 0"),
+        (
+            "partial frame",
+            |d| {
+                let mut bytes = std::fs::read(d.join("array.bin")).unwrap();
+                bytes.push(0);
+                std::fs::write(d.join("array.bin"), bytes).unwrap();
+            },
+            "array.bin",
+            "not a whole number of 8-byte frames",
+        ),
+        (
+            "channel without position",
+            |d| std::fs::write(d.join("electrodes.csv"), "channel,x_um,y_um\n0,0,0\n1,200,0\n3,200,200\n").unwrap(),
+            "electrodes.csv",
+            "channel 2 has no position",
+        ),
+        (
+            "unknown dtype",
+            |d| std::fs::write(d.join("rec.toml"), VALID_DESCRIPTION.replace("\"i16\"", "\"int12\"")).unwrap(),
+            "rec.toml",
+            "dtype is \"int12\"",
+        ),
+        (
+            "non-positive rate",
+            |d| std::fs::write(d.join("rec.toml"), VALID_DESCRIPTION.replace("20000.0", "-20000.0")).unwrap(),
+            "rec.toml",
+            "sample_rate_hz is -20000, but it must be greater than 0",
+        ),
+        (
+            "zero rate",
+            |d| std::fs::write(d.join("rec.toml"), VALID_DESCRIPTION.replace("20000.0", "0.0")).unwrap(),
+            "rec.toml",
+            "sample_rate_hz is 0",
+        ),
         ("missing data file", |d| std::fs::remove_file(d.join("array.bin")).unwrap(), "rec.toml", "data file"),
-        ("missing electrode table", |d| std::fs::remove_file(d.join("electrodes.csv")).unwrap(), "rec.toml", "electrode table"),
+        (
+            "missing electrode table",
+            |d| std::fs::remove_file(d.join("electrodes.csv")).unwrap(),
+            "rec.toml",
+            "electrode table",
+        ),
         ("empty data file", |d| std::fs::write(d.join("array.bin"), b"").unwrap(), "array.bin", "empty"),
-        ("zero channels", |d| std::fs::write(d.join("rec.toml"), VALID_DESCRIPTION.replace("channels = 4", "channels = 0")).unwrap(), "rec.toml", "channels is 0"),
-        ("duplicate channel", |d| std::fs::write(d.join("electrodes.csv"), "channel,x_um,y_um\n0,0,0\n1,200,0\n1,0,200\n3,200,200\n").unwrap(), "electrodes.csv", "listed twice"),
-        ("missing column", |d| std::fs::write(d.join("electrodes.csv"), "channel,x_um\n0,0\n1,200\n2,0\n3,200\n").unwrap(), "electrodes.csv", "no column y_um"),
-        ("unknown layout", |d| std::fs::write(d.join("rec.toml"), VALID_DESCRIPTION.replace("time-major", "row-major")).unwrap(), "rec.toml", "layout"),
+        (
+            "zero channels",
+            |d| std::fs::write(d.join("rec.toml"), VALID_DESCRIPTION.replace("channels = 4", "channels = 0")).unwrap(),
+            "rec.toml",
+            "channels is 0",
+        ),
+        (
+            "duplicate channel",
+            |d| {
+                std::fs::write(d.join("electrodes.csv"), "channel,x_um,y_um\n0,0,0\n1,200,0\n1,0,200\n3,200,200\n")
+                    .unwrap()
+            },
+            "electrodes.csv",
+            "listed twice",
+        ),
+        (
+            "missing column",
+            |d| std::fs::write(d.join("electrodes.csv"), "channel,x_um\n0,0\n1,200\n2,0\n3,200\n").unwrap(),
+            "electrodes.csv",
+            "no column y_um",
+        ),
+        (
+            "unknown layout",
+            |d| std::fs::write(d.join("rec.toml"), VALID_DESCRIPTION.replace("time-major", "row-major")).unwrap(),
+            "rec.toml",
+            "layout",
+        ),
         ("not TOML", |d| std::fs::write(d.join("rec.toml"), "data = \n").unwrap(), "rec.toml", ""),
     ];
     for (name, breaker, file, problem) in cases {
@@ -267,9 +350,13 @@ fn write_script(path: &Path, text: &str) {
 fn failing_stage_shows_its_command_and_output_and_keeps_earlier_results() {
     let dir = tempfile::tempdir().unwrap();
     let description = write_valid(dir.path());
-    write_script(&dir.path().join("broken.sh"), "#!/bin/sh\necho 'reading the request' >&2\necho 'the lamp is out of oil' >&2\nexit 3\n");
+    write_script(
+        &dir.path().join("broken.sh"),
+        "#!/bin/sh\necho 'reading the request' >&2\necho 'the lamp is out of oil' >&2\nexit 3\n",
+    );
     let config = dir.path().join("c.toml");
-    std::fs::write(&config, "[[stage]]\nname = \"filter\"\n[[stage]]\nname = \"lamp\"\nexec = \"./broken.sh\"\n").unwrap();
+    std::fs::write(&config, "[[stage]]\nname = \"filter\"\n[[stage]]\nname = \"lamp\"\nexec = \"./broken.sh\"\n")
+        .unwrap();
     let out = dir.path().join("out");
     let output = run(&description, &out, Some(&config));
     let message = stderr(&output);
@@ -320,7 +407,9 @@ with open(os.path.join(request["output_dir"], "summary.json"), "w") as f:
 #[test]
 fn python_stage_reads_the_request_and_earlier_outputs() {
     if Command::new("python3").arg("-c").arg("import tomllib").output().map_or(true, |o| !o.status.success()) {
-        eprintln!("skipped: python3 with tomllib (Python ≥ 3.11) is not installed, so the script-stage test cannot run");
+        eprintln!(
+            "skipped: python3 with tomllib (Python ≥ 3.11) is not installed, so the script-stage test cannot run"
+        );
         return;
     }
     let dir = tempfile::tempdir().unwrap();
@@ -330,7 +419,8 @@ fn python_stage_reads_the_request_and_earlier_outputs() {
     std::fs::write(&config, "[[stage]]\nname = \"filter\"\n[[stage]]\nname = \"detect\"\n[[stage]]\nname = \"summary\"\nexec = \"./summarise.py\"\n[stage.params]\nscale = 2.5\n").unwrap();
     let out = dir.path().join("out");
     assert_success(&run(&description, &out, Some(&config)));
-    let summary: serde_json::Value = serde_json::from_str(&std::fs::read_to_string(out.join("stages/summary/summary.json")).unwrap()).unwrap();
+    let summary: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(out.join("stages/summary/summary.json")).unwrap()).unwrap();
     assert_eq!(summary["channels"], 4);
     assert_eq!(summary["frames"], 2000);
     assert_eq!(summary["scale"], 2.5);
@@ -343,7 +433,8 @@ fn dry_run_shows_the_plan_and_runs_nothing() {
     let dir = tempfile::tempdir().unwrap();
     let description = write_valid(dir.path());
     let out = dir.path().join("out");
-    let output = spikeyard(&["run", "--recording", description.to_str().unwrap(), "--out", out.to_str().unwrap(), "--dry-run"]);
+    let output =
+        spikeyard(&["run", "--recording", description.to_str().unwrap(), "--out", out.to_str().unwrap(), "--dry-run"]);
     assert_success(&output);
     let message = stderr(&output);
     assert!(message.contains("1. filter") && message.contains("2. detect") && message.contains("run"), "{message}");

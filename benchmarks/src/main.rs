@@ -1,1 +1,124 @@
-fn main() {}
+//! `spikeyard-bench`: whole-pipeline throughput on a simulated recording,
+//! reported as samples per second and as ratios to reading the file once in
+//! the same run (the physical floor), so that figures from different
+//! machines compare. Never run by `cargo test`.
+//!
+//! Input setup (simulation) is outside the timing. Every figure comes from
+//! one run; repeat the command to see the spread.
+
+use anyhow::Context;
+use clap::Parser;
+use spikeyard::runner::{ProgressMode, RunRecord};
+use spikeyard::simulate::{write_recording, Scenario, UnitSpec};
+use spikeyard_contract::{Electrode, Recording};
+use std::path::PathBuf;
+use std::time::{Duration, Instant};
+
+/// Time read + filter + detect on a simulated probe-like recording.
+#[derive(Parser)]
+struct Args {
+    /// Folder for the recording and results (reused: the recording is
+    /// simulated only when missing).
+    #[arg(long, default_value = "target/bench-work")]
+    work: PathBuf,
+    #[arg(long, default_value_t = 384)]
+    channels: usize,
+    #[arg(long, default_value_t = 30000.0)]
+    sample_rate_hz: f64,
+    #[arg(long, default_value_t = 60.0)]
+    duration_s: f64,
+}
+
+/// A probe-like layout: two staggered columns per shank row, 20 µm apart.
+fn probe_scenario(n_channels: usize, sample_rate_hz: f64, duration_s: f64) -> Scenario {
+    let electrodes: Vec<Electrode> = (0..n_channels)
+        .map(|channel| Electrode {
+            channel,
+            x_um: (channel % 4) as f64 * 16.0 + if (channel / 4) % 2 == 1 { 8.0 } else { 0.0 },
+            y_um: (channel / 4) as f64 * 20.0,
+            label: None,
+            group: None,
+        })
+        .collect();
+    let n_units = n_channels / 8;
+    let height_um = (n_channels / 4) as f64 * 20.0;
+    let units = (0..n_units)
+        .map(|i| UnitSpec {
+            x_um: 5.0 + (i * 13 % 48) as f64,
+            y_um: height_um * (i as f64 + 0.5) / n_units as f64,
+            z_um: 15.0 + (i % 5) as f64 * 5.0,
+            peak_uv: 50.0 + (i * 37 % 100) as f64,
+            rate_hz: 2.0 + (i % 7) as f64,
+            burst_probability: 0.05,
+            trough_ms: 0.12,
+            axon: None,
+        })
+        .collect();
+    Scenario {
+        name: format!("bench-probe-{n_channels}ch"),
+        sample_rate_hz,
+        duration_s,
+        electrodes,
+        units,
+        white_noise_uv: 6.0,
+        dead_channels: vec![],
+        noisy_channels: vec![],
+        seed: 42,
+    }
+}
+
+fn read_once(recording: &Recording) -> anyhow::Result<Duration> {
+    let started = Instant::now();
+    let mut frames = Vec::new();
+    let mut checksum = 0.0f64;
+    for chunk in recording.chunks((recording.sample_rate_hz as usize).max(1), 0) {
+        recording.read_frames(chunk.core_start, chunk.core_end, &mut frames)?;
+        checksum += frames[0] as f64;
+    }
+    std::hint::black_box(checksum);
+    Ok(started.elapsed())
+}
+
+fn main() -> anyhow::Result<()> {
+    let args = Args::parse();
+    let scenario = probe_scenario(args.channels, args.sample_rate_hz, args.duration_s);
+    let recording_dir = args.work.join(&scenario.name).join(format!("{}s", args.duration_s));
+    let description = recording_dir.join("recording.toml");
+    if !description.exists() {
+        eprintln!("simulating {} ({} s) into {} ...", scenario.name, args.duration_s, recording_dir.display());
+        write_recording(&scenario, &recording_dir)?;
+    }
+    let recording = Recording::open(&description)?;
+    let samples = recording.n_frames as f64 * recording.n_channels as f64;
+    // Warm the page cache the same way for both measurements.
+    read_once(&recording)?;
+    let read = read_once(&recording)?.as_secs_f64();
+    let out = args.work.join("results");
+    let _ = std::fs::remove_dir_all(&out);
+    let started = Instant::now();
+    let record: RunRecord = spikeyard::commands::run(&description, &out, None, false, ProgressMode::for_stderr())?
+        .context("a benchmark run is never a dry run")?;
+    let total = started.elapsed().as_secs_f64();
+
+    let duration = recording.duration_s();
+    println!("\n## spikeyard benchmark: {} ({} channels, {} Hz, {:.0} s, i16)\n", scenario.name, recording.n_channels, recording.sample_rate_hz, duration);
+    println!("machine: {} cores, {}", std::thread::available_parallelism().map_or(0, |n| n.get()), cpu_model());
+    println!("\n| step | wall s | Msamples/s | x real time | ratio to reading once |");
+    println!("|---|---|---|---|---|");
+    let row = |name: &str, seconds: f64| {
+        println!("| {name} | {seconds:.2} | {:.1} | {:.1} | {:.2} |", samples / seconds / 1e6, duration / seconds, seconds / read);
+    };
+    row("read file once (reference)", read);
+    for stage in &record.stages {
+        row(&format!("stage {} (peak RSS {:.0} MiB)", stage.name, stage.peak_rss_bytes as f64 / (1 << 20) as f64), stage.wall_seconds);
+    }
+    row("whole run (hashing, planning, all stages)", total);
+    Ok(())
+}
+
+fn cpu_model() -> String {
+    std::fs::read_to_string("/proc/cpuinfo")
+        .ok()
+        .and_then(|text| text.lines().find(|l| l.starts_with("model name")).map(|l| l.split(':').nth(1).unwrap_or("").trim().to_string()))
+        .unwrap_or_else(|| "unknown CPU".into())
+}

@@ -26,7 +26,8 @@ pub fn plan_run(recording: &Path, out: &Path, config: Option<&Path>) -> anyhow::
         recording.sample_rate_hz,
         recording.dtype.name()
     );
-    let hash = hash_recording(&recording).with_context(|| format!("{}: cannot read to hash it", recording.data_path.display()))?;
+    let hash = hash_recording(&recording)
+        .with_context(|| format!("{}: cannot read to hash it", recording.data_path.display()))?;
     build_plan(&config, &recording, &hash, out)
 }
 
@@ -34,7 +35,13 @@ pub fn plan_run(recording: &Path, out: &Path, config: Option<&Path>) -> anyhow::
 ///
 /// # Errors
 /// As [`plan_run`] and [`execute`].
-pub fn run(recording: &Path, out: &Path, config: Option<&Path>, dry_run: bool, mode: ProgressMode) -> anyhow::Result<Option<RunRecord>> {
+pub fn run(
+    recording: &Path,
+    out: &Path,
+    config: Option<&Path>,
+    dry_run: bool,
+    mode: ProgressMode,
+) -> anyhow::Result<Option<RunRecord>> {
     let plan = plan_run(recording, out, config)?;
     eprint!("{}", plan.describe());
     if dry_run {
@@ -49,10 +56,19 @@ pub fn run(recording: &Path, out: &Path, config: Option<&Path>, dry_run: bool, m
 ///
 /// # Errors
 /// Unknown scenario, or writing fails.
-pub fn simulate(out: &Path, scenario: &str, duration_s: f64, seed: u64) -> anyhow::Result<(Scenario, SimulatedRecording)> {
-    let scenario = Scenario::named(scenario, duration_s, seed)
-        .with_context(|| format!("unknown scenario \"{scenario}\"; known: {}", crate::simulate::SCENARIOS.join(", ")))?;
-    anyhow::ensure!(duration_s.is_finite() && duration_s >= 1.0, "--duration-s is {duration_s}, but it must be at least 1");
+pub fn simulate(
+    out: &Path,
+    scenario: &str,
+    duration_s: f64,
+    seed: u64,
+) -> anyhow::Result<(Scenario, SimulatedRecording)> {
+    let scenario = Scenario::named(scenario, duration_s, seed).with_context(|| {
+        format!("unknown scenario \"{scenario}\"; known: {}", crate::simulate::SCENARIOS.join(", "))
+    })?;
+    anyhow::ensure!(
+        duration_s.is_finite() && duration_s >= 1.0,
+        "--duration-s is {duration_s}, but it must be at least 1"
+    );
     let written = write_recording(&scenario, out)?;
     eprintln!(
         "simulated \"{}\": {} electrodes, {:.0} s at {} Hz, {} units, {} spikes -> {}",
@@ -67,11 +83,14 @@ pub fn simulate(out: &Path, scenario: &str, duration_s: f64, seed: u64) -> anyho
     Ok((scenario, written))
 }
 
+/// Events as (sample, channel), in table order.
+pub type EventList = Vec<(u64, usize)>;
+
 /// Read `events.parquet` as (sample, channel), and `channel_noise.parquet` as σ per channel.
 ///
 /// # Errors
 /// The tables are missing or lack the columns.
-pub fn read_events_and_noise(results: &Path) -> anyhow::Result<(Vec<(u64, usize)>, Vec<f64>)> {
+pub fn read_events_and_noise(results: &Path) -> anyhow::Result<(EventList, Vec<f64>)> {
     let events_path = results.join("events.parquet");
     let mut events = Vec::new();
     for batch in read_table(&events_path)? {
@@ -93,9 +112,14 @@ pub fn read_events_and_noise(results: &Path) -> anyhow::Result<(Vec<(u64, usize)
 ///
 /// # Errors
 /// The result tables cannot be read.
-pub fn score_run(results: &Path, scenario: &Scenario, simulated: &SimulatedRecording) -> anyhow::Result<DetectionScore> {
+pub fn score_run(
+    results: &Path,
+    scenario: &Scenario,
+    simulated: &SimulatedRecording,
+) -> anyhow::Result<DetectionScore> {
     let (events, noise) = read_events_and_noise(results)?;
-    let valid = spikeyard_filter::params::FilterParams::default().check(scenario.sample_rate_hz).map_err(anyhow::Error::msg)?;
+    let valid =
+        spikeyard_filter::params::FilterParams::default().check(scenario.sample_rate_hz).map_err(anyhow::Error::msg)?;
     let engine = spikeyard_filter::kernel::FilterEngine::new(&valid, scenario.sample_rate_hz);
     let window_frames = (0.5e-3 * scenario.sample_rate_hz).round() as u64;
     let truth = Truth { spikes: &simulated.spikes, templates: &simulated.templates, electrodes: &scenario.electrodes };
@@ -112,22 +136,46 @@ pub fn demo(out: &Path, scenario: &str, duration_s: f64, mode: ProgressMode) -> 
     let (scenario, simulated) = simulate(&recording_dir, scenario, duration_s, 1)?;
     let record = run(&simulated.description, &results_dir, None, false, mode)?.context("the demo does not dry-run")?;
     let score = score_run(&results_dir, &scenario, &simulated)?;
-    println!("\nspikeyard demo: scenario \"{}\", {} electrodes, {:.0} s", scenario.name, scenario.electrodes.len(), scenario.duration_s);
+    println!(
+        "\nspikeyard demo: scenario \"{}\", {} electrodes, {:.0} s",
+        scenario.name,
+        scenario.electrodes.len(),
+        scenario.duration_s
+    );
     println!("  recording:    {}", simulated.description.display());
     println!("  ground truth: {}, {}", simulated.truth_units.display(), simulated.truth_spikes.display());
     println!("  results:      {}", results_dir.display());
     for stage in &record.stages {
         let figures: Vec<String> = stage.summary.iter().map(|(k, v)| format!("{k}={v}")).collect();
-        println!("  stage {:<8} {:>6.1} s  {:>5.0} MiB  {}", stage.name, stage.wall_seconds, stage.peak_rss_bytes as f64 / (1 << 20) as f64, figures.join(" "));
+        println!(
+            "  stage {:<8} {:>6.1} s  {:>5.0} MiB  {}",
+            stage.name,
+            stage.wall_seconds,
+            stage.peak_rss_bytes as f64 / (1 << 20) as f64,
+            figures.join(" ")
+        );
     }
     println!("\n  detection against the simulated truth (±0.5 ms, within 100 µm of the unit's main electrode):");
     println!("  {:>4} {:>8} {:>13} {:>7} {:>7} {:>7}", "unit", "channel", "amplitude σ", "spikes", "found", "recall");
     for unit in &score.units {
-        println!("  {:>4} {:>8} {:>13.1} {:>7} {:>7} {:>7.3}", unit.unit, unit.channel, unit.amplitude_sigma, unit.n_truth, unit.n_found, unit.recall());
+        println!(
+            "  {:>4} {:>8} {:>13.1} {:>7} {:>7} {:>7.3}",
+            unit.unit,
+            unit.channel,
+            unit.amplitude_sigma,
+            unit.n_truth,
+            unit.n_found,
+            unit.recall()
+        );
     }
     let strong: Vec<_> = score.units.iter().filter(|u| u.amplitude_sigma >= 5.0).collect();
-    let strong_recall = strong.iter().map(|u| u.n_found).sum::<usize>() as f64 / strong.iter().map(|u| u.n_truth).sum::<usize>().max(1) as f64;
-    println!("  recall of units at ≥ 5 σ: {strong_recall:.3}; precision of all {} events: {:.3}", score.n_events, score.precision());
+    let strong_recall = strong.iter().map(|u| u.n_found).sum::<usize>() as f64
+        / strong.iter().map(|u| u.n_truth).sum::<usize>().max(1) as f64;
+    println!(
+        "  recall of units at ≥ 5 σ: {strong_recall:.3}; precision of all {} events: {:.3}",
+        score.n_events,
+        score.precision()
+    );
     println!("\n  Research software: check results before drawing any conclusion. Not a medical device.");
     Ok(())
 }

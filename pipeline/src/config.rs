@@ -83,7 +83,10 @@ impl PipelineConfig {
     pub fn load(path: Option<&Path>) -> Result<Self, ConfigError> {
         let (origin, text) = match path {
             Some(p) => {
-                let text = std::fs::read_to_string(p).map_err(|e| ConfigError { origin: p.display().to_string(), message: format!("cannot read: {e}") })?;
+                let text = std::fs::read_to_string(p).map_err(|e| ConfigError {
+                    origin: p.display().to_string(),
+                    message: format!("cannot read: {e}"),
+                })?;
                 (p.display().to_string(), text)
             }
             None => ("built-in default config".to_string(), DEFAULT_CONFIG.to_string()),
@@ -107,7 +110,8 @@ impl PipelineConfig {
         }
         let mut stages: Vec<StageConfig> = Vec::with_capacity(raw.stages.len());
         for (index, stage) in raw.stages.into_iter().enumerate() {
-            let valid_name = !stage.name.is_empty() && stage.name.chars().all(|c| c.is_ascii_lowercase() || c.is_ascii_digit() || c == '-' || c == '_');
+            let valid_name = !stage.name.is_empty()
+                && stage.name.chars().all(|c| c.is_ascii_lowercase() || c.is_ascii_digit() || c == '-' || c == '_');
             if !valid_name {
                 return Err(error(format!(
                     "stage.[{index}].name is \"{}\", but it must be lowercase letters, digits, - or _",
@@ -117,7 +121,8 @@ impl PipelineConfig {
             if stages.iter().any(|s| s.name == stage.name) {
                 return Err(error(format!("stage.[{index}].name \"{}\" is used by an earlier stage", stage.name)));
             }
-            let params = serde_json::to_value(&stage.params).map_err(|e| error(format!("stage {}: params: {e}", stage.name)))?;
+            let params =
+                serde_json::to_value(&stage.params).map_err(|e| error(format!("stage {}: params: {e}", stage.name)))?;
             stages.push(StageConfig { name: stage.name, exec: stage.exec, params });
         }
         Ok(PipelineConfig { path: path.map(Path::to_path_buf), run: raw.run, stages })
@@ -160,9 +165,11 @@ mod tests {
     #[test]
     fn default_config_matches_the_stages_defaults() {
         let config = PipelineConfig::load(None).unwrap();
-        let filter: spikeyard_filter::params::FilterParams = serde_json::from_value(config.stages[0].params.clone()).unwrap();
+        let filter: spikeyard_filter::params::FilterParams =
+            serde_json::from_value(config.stages[0].params.clone()).unwrap();
         assert_eq!(filter, spikeyard_filter::params::FilterParams::default());
-        let detect: spikeyard_detect::params::DetectParams = serde_json::from_value(config.stages[1].params.clone()).unwrap();
+        let detect: spikeyard_detect::params::DetectParams =
+            serde_json::from_value(config.stages[1].params.clone()).unwrap();
         assert_eq!(detect, spikeyard_detect::params::DetectParams::default());
         assert_eq!(config.run, RunSettings::default());
         // And it lists every parameter, so the file documents them all.

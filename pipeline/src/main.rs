@@ -62,8 +62,12 @@ fn main() -> ExitCode {
     let cli = Cli::parse();
     let mode = ProgressMode::for_stderr();
     let outcome = match cli.command {
-        Command::Run { recording, out, config, dry_run } => commands::run(&recording, &out, config.as_deref(), dry_run, mode).map(|_| ()),
-        Command::Simulate { out, scenario, duration_s, seed } => commands::simulate(&out, &scenario, duration_s, seed).map(|_| ()),
+        Command::Run { recording, out, config, dry_run } => {
+            commands::run(&recording, &out, config.as_deref(), dry_run, mode).map(|_| ())
+        }
+        Command::Simulate { out, scenario, duration_s, seed } => {
+            commands::simulate(&out, &scenario, duration_s, seed).map(|_| ())
+        }
         Command::Demo { out, scenario, duration_s } => commands::demo(&out, &scenario, duration_s, mode),
         Command::Stages => {
             print!("{}", commands::list_stages());

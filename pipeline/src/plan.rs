@@ -96,7 +96,9 @@ impl Manifest {
 
     /// Every listed output exists with its recorded size.
     pub fn outputs_present(&self, folder: &Path) -> bool {
-        self.outputs.iter().all(|o| std::fs::metadata(folder.join(&o.file)).map(|m| m.len() == o.bytes).unwrap_or(false))
+        self.outputs
+            .iter()
+            .all(|o| std::fs::metadata(folder.join(&o.file)).map(|m| m.len() == o.bytes).unwrap_or(false))
     }
 }
 
@@ -116,7 +118,14 @@ pub fn hash_recording(recording: &Recording) -> std::io::Result<String> {
 }
 
 /// The cache key of one stage (see the module docs for the recipe).
-pub fn cache_key(name: &str, executable_hash: &str, params: &serde_json::Value, seed: u64, recording_hash: &str, upstream: Option<&str>) -> String {
+pub fn cache_key(
+    name: &str,
+    executable_hash: &str,
+    params: &serde_json::Value,
+    seed: u64,
+    recording_hash: &str,
+    upstream: Option<&str>,
+) -> String {
     let params = serde_json::to_string(params).unwrap_or_default();
     hash_parts([
         ("format", CACHE_FORMAT.as_bytes()),
@@ -135,25 +144,42 @@ pub fn cache_key(name: &str, executable_hash: &str, params: &serde_json::Value, 
 /// # Errors
 /// A stage executable is missing or unreadable, or a built-in stage's
 /// parameters are refused (message names the config and the key).
-pub fn build_plan(config: &PipelineConfig, recording: &Recording, recording_hash: &str, output_dir: &Path) -> anyhow::Result<Plan> {
+pub fn build_plan(
+    config: &PipelineConfig,
+    recording: &Recording,
+    recording_hash: &str,
+    output_dir: &Path,
+) -> anyhow::Result<Plan> {
     let mut steps: Vec<Step> = Vec::new();
     let mut warnings = Vec::new();
     for stage in &config.stages {
         let executable = find_stage_executable(&stage.name, stage.exec.as_deref(), &config.folder())?;
-        let default_executable = stage.exec.as_deref().is_none_or(|e| e == format!("{}{}", crate::stages::STAGE_PREFIX, stage.name));
+        let default_executable =
+            stage.exec.as_deref().is_none_or(|e| e == format!("{}{}", crate::stages::STAGE_PREFIX, stage.name));
         if let (Some(b), true) = (builtin(&stage.name), default_executable) {
-            let stage_warnings = (b.check)(&stage.params, recording.sample_rate_hz)
-                .map_err(|e| crate::config::ConfigError { origin: config.origin(), message: format!("stage {}: {e}", stage.name) })?;
+            let stage_warnings = (b.check)(&stage.params, recording.sample_rate_hz).map_err(|e| {
+                crate::config::ConfigError { origin: config.origin(), message: format!("stage {}: {e}", stage.name) }
+            })?;
             warnings.extend(stage_warnings.into_iter().map(|w| format!("stage {}: {w}", stage.name)));
         }
-        let executable_hash = hash_file(&executable).map_err(|e| anyhow::anyhow!("{}: cannot read: {e}", executable.display()))?;
+        let executable_hash =
+            hash_file(&executable).map_err(|e| anyhow::anyhow!("{}: cannot read: {e}", executable.display()))?;
         let upstream = steps.last().map(|s| s.cache_key.as_str());
         let key = cache_key(&stage.name, &executable_hash, &stage.params, config.run.seed, recording_hash, upstream);
         let folder = output_dir.join(STAGES_FOLDER).join(&stage.name);
         // A stage is reusable only if everything before it is too.
         let upstream_cached = steps.last().is_none_or(|s| s.cached);
-        let cached = upstream_cached && Manifest::read(&folder).is_some_and(|m| m.cache_key == key && m.outputs_present(&folder));
-        steps.push(Step { name: stage.name.clone(), executable, executable_hash, params: stage.params.clone(), cache_key: key, folder, cached });
+        let cached = upstream_cached
+            && Manifest::read(&folder).is_some_and(|m| m.cache_key == key && m.outputs_present(&folder));
+        steps.push(Step {
+            name: stage.name.clone(),
+            executable,
+            executable_hash,
+            params: stage.params.clone(),
+            cache_key: key,
+            folder,
+            cached,
+        });
     }
     Ok(Plan {
         recording: recording.description_path.clone(),
@@ -170,7 +196,12 @@ pub fn build_plan(config: &PipelineConfig, recording: &Recording, recording_hash
 impl Plan {
     /// A human-readable listing of the plan.
     pub fn describe(&self) -> String {
-        let mut text = format!("plan for {} -> {} (config: {})\n", self.recording.display(), self.output_dir.display(), self.config);
+        let mut text = format!(
+            "plan for {} -> {} (config: {})\n",
+            self.recording.display(),
+            self.output_dir.display(),
+            self.config
+        );
         for (i, step) in self.steps.iter().enumerate() {
             text.push_str(&format!(
                 "  {}. {:<10} {:<8} {}  key {}\n",

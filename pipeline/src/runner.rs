@@ -102,7 +102,8 @@ fn unpublish(output_dir: &Path) -> anyhow::Result<()> {
 /// I/O errors on the output folder, with its path.
 pub fn execute(plan: &Plan, mode: ProgressMode) -> anyhow::Result<RunRecord> {
     let stages_dir = plan.output_dir.join(STAGES_FOLDER);
-    std::fs::create_dir_all(&stages_dir).with_context(|| format!("{}: cannot create the output folder", stages_dir.display()))?;
+    std::fs::create_dir_all(&stages_dir)
+        .with_context(|| format!("{}: cannot create the output folder", stages_dir.display()))?;
     unpublish(&plan.output_dir)?;
     for warning in &plan.warnings {
         eprintln!("warning: {warning}");
@@ -111,7 +112,8 @@ pub fn execute(plan: &Plan, mode: ProgressMode) -> anyhow::Result<RunRecord> {
     let mut outcomes = Vec::new();
     for (index, step) in plan.steps.iter().enumerate() {
         let manifest = if step.cached {
-            let manifest = Manifest::read(&step.folder).with_context(|| format!("{}: manifest vanished", step.folder.display()))?;
+            let manifest = Manifest::read(&step.folder)
+                .with_context(|| format!("{}: manifest vanished", step.folder.display()))?;
             eprintln!("[{}] up to date (cache key {}), not re-run", step.name, &step.cache_key[..16]);
             manifest
         } else {
@@ -154,7 +156,8 @@ fn publish(plan: &Plan, artifacts: &BTreeMap<String, PathBuf>) -> anyhow::Result
         let temporary = plan.output_dir.join(format!(".{name}.partial"));
         let _ = std::fs::remove_file(&temporary);
         if std::fs::hard_link(source, &temporary).is_err() {
-            std::fs::copy(source, &temporary).with_context(|| format!("{}: cannot copy to {}", source.display(), temporary.display()))?;
+            std::fs::copy(source, &temporary)
+                .with_context(|| format!("{}: cannot copy to {}", source.display(), temporary.display()))?;
         }
         std::fs::rename(&temporary, &target).with_context(|| format!("{}: cannot publish", target.display()))?;
         published.push(name.clone());
@@ -171,14 +174,20 @@ pub fn write_atomic(path: &Path, bytes: &[u8]) -> anyhow::Result<()> {
     let temporary = path.with_file_name(format!(".{name}.partial"));
     {
         use std::io::Write;
-        let mut file = std::fs::File::create(&temporary).with_context(|| format!("{}: cannot create", temporary.display()))?;
-        file.write_all(bytes).and_then(|_| file.sync_all()).with_context(|| format!("{}: cannot write", temporary.display()))?;
+        let mut file =
+            std::fs::File::create(&temporary).with_context(|| format!("{}: cannot create", temporary.display()))?;
+        file.write_all(bytes)
+            .and_then(|_| file.sync_all())
+            .with_context(|| format!("{}: cannot write", temporary.display()))?;
     }
     std::fs::rename(&temporary, path).with_context(|| format!("{}: cannot rename into place", path.display()))
 }
 
 fn read_report(folder: &Path) -> StageReport {
-    std::fs::read_to_string(folder.join(REPORT_FILE)).ok().and_then(|t| serde_json::from_str(&t).ok()).unwrap_or_default()
+    std::fs::read_to_string(folder.join(REPORT_FILE))
+        .ok()
+        .and_then(|t| serde_json::from_str(&t).ok())
+        .unwrap_or_default()
 }
 
 /// Files in `folder`, recursively, as paths relative to it (sorted).
@@ -200,11 +209,18 @@ fn list_files(folder: &Path) -> std::io::Result<Vec<String>> {
     Ok(files)
 }
 
-fn run_stage(plan: &Plan, step: &Step, upstream: Option<String>, artifacts: &BTreeMap<String, PathBuf>, mode: ProgressMode) -> anyhow::Result<Manifest> {
+fn run_stage(
+    plan: &Plan,
+    step: &Step,
+    upstream: Option<String>,
+    artifacts: &BTreeMap<String, PathBuf>,
+    mode: ProgressMode,
+) -> anyhow::Result<Manifest> {
     let stages_dir = plan.output_dir.join(STAGES_FOLDER);
     let partial = stages_dir.join(format!(".{}.partial", step.name));
     if partial.exists() {
-        std::fs::remove_dir_all(&partial).with_context(|| format!("{}: cannot remove the leftover of an interrupted run", partial.display()))?;
+        std::fs::remove_dir_all(&partial)
+            .with_context(|| format!("{}: cannot remove the leftover of an interrupted run", partial.display()))?;
     }
     std::fs::create_dir_all(&partial).with_context(|| format!("{}: cannot create", partial.display()))?;
     let request = StageRequest {
@@ -213,7 +229,10 @@ fn run_stage(plan: &Plan, step: &Step, upstream: Option<String>, artifacts: &BTr
         recording: std::path::absolute(&plan.recording).unwrap_or_else(|_| plan.recording.clone()),
         output_dir: std::path::absolute(&partial).unwrap_or_else(|_| partial.clone()),
         params: step.params.clone(),
-        artifacts: artifacts.iter().map(|(k, v)| (k.clone(), std::path::absolute(v).unwrap_or_else(|_| v.clone()))).collect(),
+        artifacts: artifacts
+            .iter()
+            .map(|(k, v)| (k.clone(), std::path::absolute(v).unwrap_or_else(|_| v.clone())))
+            .collect(),
         threads: plan.threads,
         seed: plan.seed,
         path: PathBuf::new(),
@@ -231,29 +250,34 @@ fn run_stage(plan: &Plan, step: &Step, upstream: Option<String>, artifacts: &BTr
     if plan.threads > 0 {
         command.env("RAYON_NUM_THREADS", plan.threads.to_string());
     }
-    let mut child = command.spawn().with_context(|| format!("stage {}: cannot start {}", step.name, step.executable.display()))?;
+    let mut child =
+        command.spawn().with_context(|| format!("stage {}: cannot start {}", step.name, step.executable.display()))?;
     let (sender, receiver) = std::sync::mpsc::channel::<String>();
-    let readers: Vec<_> = [child.stdout.take().map(|s| Box::new(s) as Box<dyn std::io::Read + Send>), child.stderr.take().map(|s| Box::new(s) as Box<dyn std::io::Read + Send>)]
-        .into_iter()
-        .flatten()
-        .map(|stream| {
-            let sender = sender.clone();
-            std::thread::spawn(move || {
-                for line in std::io::BufReader::new(stream).lines() {
-                    let Ok(line) = line else { break };
-                    if sender.send(line).is_err() {
-                        break;
-                    }
+    let readers: Vec<_> = [
+        child.stdout.take().map(|s| Box::new(s) as Box<dyn std::io::Read + Send>),
+        child.stderr.take().map(|s| Box::new(s) as Box<dyn std::io::Read + Send>),
+    ]
+    .into_iter()
+    .flatten()
+    .map(|stream| {
+        let sender = sender.clone();
+        std::thread::spawn(move || {
+            for line in std::io::BufReader::new(stream).lines() {
+                let Ok(line) = line else { break };
+                if sender.send(line).is_err() {
+                    break;
                 }
-            })
+            }
         })
-        .collect();
+    })
+    .collect();
     drop(sender);
     let tail = follow_output(&step.name, receiver, mode, started);
     for reader in readers {
         let _ = reader.join();
     }
-    let (status, peak_rss_bytes) = wait_with_usage(&mut child).with_context(|| format!("stage {}: cannot wait for {}", step.name, step.executable.display()))?;
+    let (status, peak_rss_bytes) = wait_with_usage(&mut child)
+        .with_context(|| format!("stage {}: cannot wait for {}", step.name, step.executable.display()))?;
     let wall_seconds = started.elapsed().as_secs_f64();
     let tail_text = || tail.iter().map(|l| format!("    {l}")).collect::<Vec<_>>().join("\n");
     if !status.success() {
@@ -264,13 +288,27 @@ fn run_stage(plan: &Plan, step: &Step, upstream: Option<String>, artifacts: &BTr
             _ => "failed".to_string(),
         };
         let _ = std::fs::remove_dir_all(&partial);
-        return Err(StageFailed { stage: step.name.clone(), command: command_line, status: status_text, tail: tail_text(), bad_input: status.code() == Some(2) }.into());
+        return Err(StageFailed {
+            stage: step.name.clone(),
+            command: command_line,
+            status: status_text,
+            tail: tail_text(),
+            bad_input: status.code() == Some(2),
+        }
+        .into());
     }
     let files = list_files(&partial).with_context(|| format!("{}: cannot list", partial.display()))?;
     let outputs: Vec<String> = files.into_iter().filter(|f| f != REPORT_FILE && f != MANIFEST_FILE).collect();
     if outputs.is_empty() {
         let _ = std::fs::remove_dir_all(&partial);
-        return Err(StageFailed { stage: step.name.clone(), command: command_line, status: "exited 0 but wrote no output".into(), tail: tail_text(), bad_input: false }.into());
+        return Err(StageFailed {
+            stage: step.name.clone(),
+            command: command_line,
+            status: "exited 0 but wrote no output".into(),
+            tail: tail_text(),
+            bad_input: false,
+        }
+        .into());
     }
     let mut output_files = Vec::with_capacity(outputs.len());
     for file in outputs {
@@ -305,22 +343,35 @@ fn run_stage(plan: &Plan, step: &Step, upstream: Option<String>, artifacts: &BTr
     if step.folder.exists() {
         std::fs::rename(&step.folder, &old).with_context(|| format!("{}: cannot move aside", step.folder.display()))?;
     }
-    std::fs::rename(&partial, &step.folder).with_context(|| format!("{}: cannot rename into place", step.folder.display()))?;
+    std::fs::rename(&partial, &step.folder)
+        .with_context(|| format!("{}: cannot rename into place", step.folder.display()))?;
     let _ = std::fs::remove_dir_all(&old);
-    eprintln!("[{}] done in {:.1} s, peak memory {:.0} MiB", step.name, wall_seconds, peak_rss_bytes as f64 / (1 << 20) as f64);
+    eprintln!(
+        "[{}] done in {:.1} s, peak memory {:.0} MiB",
+        step.name,
+        wall_seconds,
+        peak_rss_bytes as f64 / (1 << 20) as f64
+    );
     Ok(manifest)
 }
 
 /// Show a stage's output as it arrives; returns its last lines.
-fn follow_output(stage: &str, lines: std::sync::mpsc::Receiver<String>, mode: ProgressMode, started: Instant) -> VecDeque<String> {
+fn follow_output(
+    stage: &str,
+    lines: std::sync::mpsc::Receiver<String>,
+    mode: ProgressMode,
+    started: Instant,
+) -> VecDeque<String> {
     let mut tail = VecDeque::with_capacity(TAIL_LINES);
     let bar = match mode {
         ProgressMode::Bar => {
             let bar = indicatif::ProgressBar::new(0);
             bar.set_style(
-                indicatif::ProgressStyle::with_template("{prefix:>10} [{bar:32}] {percent:>3}%  {elapsed_precise} elapsed, {eta} left")
-                    .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar())
-                    .progress_chars("=> "),
+                indicatif::ProgressStyle::with_template(
+                    "{prefix:>10} [{bar:32}] {percent:>3}%  {elapsed_precise} elapsed, {eta} left",
+                )
+                .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar())
+                .progress_chars("=> "),
             );
             bar.set_prefix(stage.to_string());
             Some(bar)
@@ -335,14 +386,21 @@ fn follow_output(stage: &str, lines: std::sync::mpsc::Receiver<String>, mode: Pr
                     bar.set_length(total);
                     bar.set_position(done);
                 }
-                (None, ProgressMode::Log { interval }) => {
-                    if last_log.is_none_or(|t| t.elapsed() >= interval) && done < total {
-                        last_log = Some(Instant::now());
-                        let elapsed = started.elapsed().as_secs_f64();
-                        let fraction = done as f64 / total.max(1) as f64;
-                        let eta = if fraction > 0.0 { format!("{:.0} s", elapsed * (1.0 - fraction) / fraction) } else { "unknown".into() };
-                        eprintln!("[{stage}] {:.0}% ({done} of {total} {unit}), {elapsed:.0} s elapsed, about {eta} left", 100.0 * fraction);
-                    }
+                (None, ProgressMode::Log { interval })
+                    if last_log.is_none_or(|t| t.elapsed() >= interval) && done < total =>
+                {
+                    last_log = Some(Instant::now());
+                    let elapsed = started.elapsed().as_secs_f64();
+                    let fraction = done as f64 / total.max(1) as f64;
+                    let eta = if fraction > 0.0 {
+                        format!("{:.0} s", elapsed * (1.0 - fraction) / fraction)
+                    } else {
+                        "unknown".into()
+                    };
+                    eprintln!(
+                        "[{stage}] {:.0}% ({done} of {total} {unit}), {elapsed:.0} s elapsed, about {eta} left",
+                        100.0 * fraction
+                    );
                 }
                 _ => {}
             }

@@ -265,7 +265,8 @@ pub fn render_template(unit: &UnitSpec, electrodes: &[Electrode], sample_rate_hz
             .map(|k| {
                 let t = (k as f64 - pre_frames as f64) * frame_ms;
                 let soma = soma_scale / r_soma * soma_shape(t, unit.trough_ms);
-                let axon: f64 = near_axon.iter().map(|(r, delay)| axon_scale * AXON_STEP_UM / r * axon_shape(t - delay)).sum();
+                let axon: f64 =
+                    near_axon.iter().map(|(r, delay)| axon_scale * AXON_STEP_UM / r * axon_shape(t - delay)).sum();
                 (soma + axon) as f32
             })
             .collect();
@@ -360,7 +361,8 @@ pub fn write_recording(scenario: &Scenario, folder: &Path) -> anyhow::Result<Sim
     let fs = scenario.sample_rate_hz;
     let n_channels = scenario.electrodes.len();
     let n_frames = scenario.n_frames();
-    let templates: Vec<Template> = scenario.units.iter().map(|u| render_template(u, &scenario.electrodes, fs)).collect();
+    let templates: Vec<Template> =
+        scenario.units.iter().map(|u| render_template(u, &scenario.electrodes, fs)).collect();
     let spikes = spike_trains(scenario);
     let data_path = folder.join("recording.bin");
     let file = std::fs::File::create(&data_path).with_context(|| format!("{}: cannot create", data_path.display()))?;
@@ -388,7 +390,8 @@ pub fn write_recording(scenario: &Scenario, folder: &Path) -> anyhow::Result<Sim
                     value += *state;
                 }
                 let t = (start + k as u64) as f64 / fs;
-                let hum = 15.0 * (2.0 * std::f64::consts::PI * 50.0 * t).sin() + 4.0 * (2.0 * std::f64::consts::PI * 150.0 * t + 0.3).sin();
+                let hum = 15.0 * (2.0 * std::f64::consts::PI * 50.0 * t).sin()
+                    + 4.0 * (2.0 * std::f64::consts::PI * 150.0 * t + 0.3).sin();
                 value + hum
             })
             .collect();
@@ -397,7 +400,9 @@ pub fn write_recording(scenario: &Scenario, folder: &Path) -> anyhow::Result<Sim
             .par_iter_mut()
             .enumerate()
             .map(|(channel, state)| {
-                let mut rng = TestRng::new(scenario.seed.wrapping_add(1 + channel as u64).wrapping_mul(0x2545_F491_4F6C_DD1D) ^ block_index);
+                let mut rng = TestRng::new(
+                    scenario.seed.wrapping_add(1 + channel as u64).wrapping_mul(0x2545_F491_4F6C_DD1D) ^ block_index,
+                );
                 let dead = scenario.dead_channels.contains(&channel);
                 let gain = if scenario.noisy_channels.contains(&channel) { 5.0 } else { 1.0 };
                 (0..len)
@@ -448,13 +453,16 @@ pub fn write_recording(scenario: &Scenario, folder: &Path) -> anyhow::Result<Sim
         }
         let bytes: Vec<u8> = block
             .iter()
-            .flat_map(|v| ((v / MICROVOLTS_PER_UNIT).round().clamp(i16::MIN as f64, i16::MAX as f64) as i16).to_le_bytes())
+            .flat_map(|v| {
+                ((v / MICROVOLTS_PER_UNIT).round().clamp(i16::MIN as f64, i16::MAX as f64) as i16).to_le_bytes()
+            })
             .collect();
         out.write_all(&bytes).with_context(|| format!("{}: write failed", data_path.display()))?;
         start = end;
     }
     out.flush().with_context(|| format!("{}: write failed", data_path.display()))?;
-    write_electrodes(&folder.join("electrodes.csv"), &scenario.electrodes).with_context(|| format!("{}: cannot write electrodes.csv", folder.display()))?;
+    write_electrodes(&folder.join("electrodes.csv"), &scenario.electrodes)
+        .with_context(|| format!("{}: cannot write electrodes.csv", folder.display()))?;
     let description = folder.join("recording.toml");
     DescriptionFields {
         data: "recording.bin",
@@ -481,14 +489,27 @@ pub fn template_main_channel(template: &Template) -> (usize, f32) {
         .fold((0, f32::INFINITY), |best, x| if x.1 < best.1 { x } else { best })
 }
 
-fn write_truth(scenario: &Scenario, templates: &[Template], spikes: &[TruthSpike], folder: &Path) -> anyhow::Result<(PathBuf, PathBuf)> {
+fn write_truth(
+    scenario: &Scenario,
+    templates: &[Template],
+    spikes: &[TruthSpike],
+    folder: &Path,
+) -> anyhow::Result<(PathBuf, PathBuf)> {
     let n_units = scenario.units.len();
     let mut counts = vec![0i64; n_units];
     for s in spikes {
         counts[s.unit] += 1;
     }
     let main: Vec<(usize, f32)> = templates.iter().map(template_main_channel).collect();
-    let metadata = [(META_WRITER, format!("spikeyard simulate {} (scenario {}, seed {})", env!("CARGO_PKG_VERSION"), scenario.name, scenario.seed))];
+    let metadata = [(
+        META_WRITER,
+        format!(
+            "spikeyard simulate {} (scenario {}, seed {})",
+            env!("CARGO_PKG_VERSION"),
+            scenario.name,
+            scenario.seed
+        ),
+    )];
     let units = RecordBatch::try_new(
         Arc::new(Schema::new(vec![
             Field::new("unit_id", DataType::Int32, false),
@@ -510,7 +531,9 @@ fn write_truth(scenario: &Scenario, templates: &[Template], spikes: &[TruthSpike
             Arc::new(Float64Array::from_iter_values(main.iter().map(|m| m.1 as f64))),
             Arc::new(Int64Array::from(counts.clone())),
             Arc::new(Float64Array::from_iter_values(counts.iter().map(|&c| c as f64 / scenario.duration_s))),
-            Arc::new(Float64Array::from_iter(scenario.units.iter().map(|u| u.axon.as_ref().map(|a| a.velocity_m_per_s)))),
+            Arc::new(Float64Array::from_iter(
+                scenario.units.iter().map(|u| u.axon.as_ref().map(|a| a.velocity_m_per_s)),
+            )),
         ],
     )?;
     let spikes_batch = RecordBatch::try_new(
@@ -544,7 +567,16 @@ mod tests {
             .enumerate()
             .map(|(c, &x)| Electrode { channel: c, x_um: x, y_um: 0.0, label: None, group: None })
             .collect();
-        let unit = UnitSpec { x_um: 0.0, y_um: 0.0, z_um: 20.0, peak_uv: 100.0, rate_hz: 1.0, burst_probability: 0.0, trough_ms: 0.12, axon: None };
+        let unit = UnitSpec {
+            x_um: 0.0,
+            y_um: 0.0,
+            z_um: 20.0,
+            peak_uv: 100.0,
+            rate_hz: 1.0,
+            burst_probability: 0.0,
+            trough_ms: 0.12,
+            axon: None,
+        };
         let template = render_template(&unit, &electrodes, 20000.0);
         let trough: Vec<f64> = template.values_uv.iter().map(|row| row[template.pre_frames] as f64).collect();
         let r = [20.0f64, 30.0f64.hypot(20.0), 90.0f64.hypot(20.0)];

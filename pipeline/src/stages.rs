@@ -82,7 +82,10 @@ fn is_executable(path: &Path) -> bool {
 /// built-in stage name.
 pub fn find_stage_executable(stage: &str, exec: Option<&str>, config_folder: &Path) -> Result<PathBuf, StageNotFound> {
     let not_found = |wanted: String, searched: String| {
-        let hint = closest_builtin(stage).filter(|c| *c != stage).map(|c| format!("; did you mean stage \"{c}\"?")).unwrap_or_default();
+        let hint = closest_builtin(stage)
+            .filter(|c| *c != stage)
+            .map(|c| format!("; did you mean stage \"{c}\"?"))
+            .unwrap_or_default();
         StageNotFound { stage: stage.to_string(), wanted, searched, hint }
     };
     let name = match exec {
@@ -91,7 +94,10 @@ pub fn find_stage_executable(stage: &str, exec: Option<&str>, config_folder: &Pa
             return if is_executable(&path) {
                 Ok(path)
             } else {
-                Err(not_found(path.display().to_string(), "(the config's exec path is missing or not executable)".into()))
+                Err(not_found(
+                    path.display().to_string(),
+                    "(the config's exec path is missing or not executable)".into(),
+                ))
             };
         }
         Some(exec) => exec.to_string(),
@@ -106,12 +112,7 @@ pub fn find_stage_executable(stage: &str, exec: Option<&str>, config_folder: &Pa
 
 /// The built-in stage name closest to `name` by edit distance, if close.
 pub fn closest_builtin(name: &str) -> Option<&'static str> {
-    BUILTIN_STAGES
-        .iter()
-        .map(|s| (edit_distance(name, s.name), s.name))
-        .min()
-        .filter(|(d, _)| *d <= 3)
-        .map(|(_, n)| n)
+    BUILTIN_STAGES.iter().map(|s| (edit_distance(name, s.name), s.name)).min().filter(|(d, _)| *d <= 3).map(|(_, n)| n)
 }
 
 fn edit_distance(a: &str, b: &str) -> usize {
@@ -152,7 +153,10 @@ mod tests {
         std::fs::write(&script, "#!/bin/sh\n").unwrap();
         use std::os::unix::fs::PermissionsExt;
         std::fs::set_permissions(&script, std::fs::Permissions::from_mode(0o755)).unwrap();
-        assert_eq!(find_stage_executable("mine", Some("./my-stage.sh"), dir.path()).unwrap(), dir.path().join("./my-stage.sh"));
+        assert_eq!(
+            find_stage_executable("mine", Some("./my-stage.sh"), dir.path()).unwrap(),
+            dir.path().join("./my-stage.sh")
+        );
         assert!(find_stage_executable("mine", Some("./absent.sh"), dir.path()).is_err());
     }
 
@@ -160,7 +164,8 @@ mod tests {
     fn builtin_checks_name_the_bad_key() {
         let err = (builtin("filter").unwrap().check)(&serde_json::json!({"ordre": 3}), 20000.0).unwrap_err();
         assert!(err.contains("ordre"), "{err}");
-        let err = (builtin("detect").unwrap().check)(&serde_json::json!({"threshold_sigma": -1.0}), 20000.0).unwrap_err();
+        let err =
+            (builtin("detect").unwrap().check)(&serde_json::json!({"threshold_sigma": -1.0}), 20000.0).unwrap_err();
         assert!(err.contains("threshold_sigma"), "{err}");
     }
 }

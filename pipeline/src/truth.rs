@@ -64,7 +64,14 @@ pub struct Truth<'a> {
 
 /// Match events `(sample, channel)` (sorted by sample) to true spikes.
 /// `noise_uv` and `engine` turn each unit's template into an amplitude in σ.
-pub fn score_detection(events: &[(u64, usize)], truth: &Truth, noise_uv: &[f64], engine: &FilterEngine, window_frames: u64, radius_um: f64) -> DetectionScore {
+pub fn score_detection(
+    events: &[(u64, usize)],
+    truth: &Truth,
+    noise_uv: &[f64],
+    engine: &FilterEngine,
+    window_frames: u64,
+    radius_um: f64,
+) -> DetectionScore {
     let Truth { spikes, templates, electrodes } = *truth;
     let main: Vec<usize> = templates.iter().map(|t| template_main_channel(t).0).collect();
     let near = |unit: usize, channel: usize| {

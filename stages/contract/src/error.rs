@@ -15,39 +15,21 @@ pub enum RecordingError {
     #[error("{path}: {message}")]
     Toml { path: PathBuf, message: String },
     #[error("{path}: {key} is {value}, but it must be {expected}")]
-    BadValue {
-        path: PathBuf,
-        key: &'static str,
-        value: String,
-        expected: String,
-    },
+    BadValue { path: PathBuf, key: &'static str, value: String, expected: String },
     #[error("{path}: data file {data} does not exist")]
     MissingData { path: PathBuf, data: PathBuf },
     #[error("{path}: electrode table {electrodes} does not exist")]
     MissingElectrodes { path: PathBuf, electrodes: PathBuf },
-    #[error("{path}: {bytes} bytes is not a whole number of {frame_bytes}-byte frames ({channels} channels of {dtype})")]
-    PartialFrame {
-        path: PathBuf,
-        bytes: u64,
-        frame_bytes: u64,
-        channels: usize,
-        dtype: &'static str,
-    },
+    #[error(
+        "{path}: {bytes} bytes is not a whole number of {frame_bytes}-byte frames ({channels} channels of {dtype})"
+    )]
+    PartialFrame { path: PathBuf, bytes: u64, frame_bytes: u64, channels: usize, dtype: &'static str },
     #[error("{path}: the data file is empty (0 frames)")]
     EmptyData { path: PathBuf },
     #[error("{path}: line {line}: {message}")]
-    ElectrodeTable {
-        path: PathBuf,
-        line: usize,
-        message: String,
-    },
+    ElectrodeTable { path: PathBuf, line: usize, message: String },
     #[error("{path}: channel {channel} has no position (the table lists {listed} of {channels} channels)")]
-    MissingPosition {
-        path: PathBuf,
-        channel: usize,
-        listed: usize,
-        channels: usize,
-    },
+    MissingPosition { path: PathBuf, channel: usize, listed: usize, channels: usize },
 }
 
 /// Errors of the stage-facing parts of the contract (requests, tables).
@@ -76,20 +58,13 @@ pub enum ContractError {
         source: arrow_schema::ArrowError,
     },
     #[error("request {path}: parameter {key}: {message}")]
-    Param {
-        path: PathBuf,
-        key: String,
-        message: String,
-    },
+    Param { path: PathBuf, key: String, message: String },
     #[error("request {path}: needs input artifact {name}, which no earlier stage produced")]
     MissingArtifact { path: PathBuf, name: String },
 }
 
 impl ContractError {
     pub fn io(path: impl Into<PathBuf>, source: std::io::Error) -> Self {
-        ContractError::Io {
-            path: path.into(),
-            source,
-        }
+        ContractError::Io { path: path.into(), source }
     }
 }

@@ -12,7 +12,7 @@
 //!   only after the footer is written.
 //! - [`noise`]: the MAD noise estimate shared by the QC and detect stages.
 //! - [`hash`]: content hashes for cache keys and manifests.
-//! - [`stage_main`]: the command-line glue every Rust stage shares.
+//! - [`mod@stage_main`]: the command-line glue every Rust stage shares.
 //!
 //! Conventions, stated once: samples are 0-based frame indices into the
 //! recording; voltages are microvolts (µV) as `f32`; signed amplitudes keep

@@ -160,14 +160,10 @@ impl Recording {
     /// mismatch listed in the interface contract.
     pub fn open(description_path: &Path) -> Result<Self, RecordingError> {
         let path = description_path.to_path_buf();
-        let text = std::fs::read_to_string(&path).map_err(|source| RecordingError::Io {
-            path: path.clone(),
-            source,
-        })?;
-        let raw: RawDescription = toml::from_str(&text).map_err(|e| RecordingError::Toml {
-            path: path.clone(),
-            message: one_line(&e.to_string()),
-        })?;
+        let text =
+            std::fs::read_to_string(&path).map_err(|source| RecordingError::Io { path: path.clone(), source })?;
+        let raw: RawDescription = toml::from_str(&text)
+            .map_err(|e| RecordingError::Toml { path: path.clone(), message: one_line(&e.to_string()) })?;
         let bad = |key: &'static str, value: String, expected: &str| RecordingError::BadValue {
             path: path.clone(),
             key,
@@ -175,40 +171,22 @@ impl Recording {
             expected: expected.to_string(),
         };
         if !(raw.sample_rate_hz.is_finite() && raw.sample_rate_hz > 0.0) {
-            return Err(bad(
-                "sample_rate_hz",
-                raw.sample_rate_hz.to_string(),
-                "greater than 0",
-            ));
+            return Err(bad("sample_rate_hz", raw.sample_rate_hz.to_string(), "greater than 0"));
         }
         if raw.channels <= 0 {
             return Err(bad("channels", raw.channels.to_string(), "at least 1"));
         }
         let n_channels = raw.channels as usize;
         let dtype = Dtype::parse(&raw.dtype).ok_or_else(|| {
-            bad(
-                "dtype",
-                format!("\"{}\"", raw.dtype),
-                &format!("one of {}", Dtype::NAMES.join(", ")),
-            )
+            bad("dtype", format!("\"{}\"", raw.dtype), &format!("one of {}", Dtype::NAMES.join(", ")))
         })?;
         let layout = match raw.layout.as_deref() {
             None | Some("time-major") => Layout::TimeMajor,
             Some("channel-major") => Layout::ChannelMajor,
-            Some(other) => {
-                return Err(bad(
-                    "layout",
-                    format!("\"{other}\""),
-                    "\"time-major\" or \"channel-major\"",
-                ))
-            }
+            Some(other) => return Err(bad("layout", format!("\"{other}\""), "\"time-major\" or \"channel-major\"")),
         };
         if !(raw.microvolts_per_unit.is_finite() && raw.microvolts_per_unit != 0.0) {
-            return Err(bad(
-                "microvolts_per_unit",
-                raw.microvolts_per_unit.to_string(),
-                "a finite, non-zero number",
-            ));
+            return Err(bad("microvolts_per_unit", raw.microvolts_per_unit.to_string(), "a finite, non-zero number"));
         }
         if !raw.offset.is_finite() {
             return Err(bad("offset", raw.offset.to_string(), "a finite number"));
@@ -218,12 +196,7 @@ impl Recording {
         let electrodes_path = folder.join(&raw.electrodes);
         let metadata = match std::fs::metadata(&data_path) {
             Ok(m) if m.is_file() => m,
-            _ => {
-                return Err(RecordingError::MissingData {
-                    path,
-                    data: data_path,
-                })
-            }
+            _ => return Err(RecordingError::MissingData { path, data: data_path }),
         };
         let frame_bytes = (n_channels * dtype.bytes()) as u64;
         let bytes = metadata.len();
@@ -240,10 +213,7 @@ impl Recording {
             return Err(RecordingError::EmptyData { path: data_path });
         }
         if !electrodes_path.is_file() {
-            return Err(RecordingError::MissingElectrodes {
-                path,
-                electrodes: electrodes_path,
-            });
+            return Err(RecordingError::MissingElectrodes { path, electrodes: electrodes_path });
         }
         let electrodes = read_electrodes(&electrodes_path, n_channels)?;
         Ok(Recording {
@@ -299,23 +269,12 @@ impl Recording {
     /// # Errors
     /// I/O errors mapping the data file, with its path. A range past the end
     /// of the recording is refused with the same kind of error.
-    pub fn read_frames(
-        &self,
-        start: u64,
-        end: u64,
-        out: &mut Vec<f32>,
-    ) -> Result<(), RecordingError> {
-        let io = |source: std::io::Error| RecordingError::Io {
-            path: self.data_path.clone(),
-            source,
-        };
+    pub fn read_frames(&self, start: u64, end: u64, out: &mut Vec<f32>) -> Result<(), RecordingError> {
+        let io = |source: std::io::Error| RecordingError::Io { path: self.data_path.clone(), source };
         if start > end || end > self.n_frames {
             return Err(io(std::io::Error::new(
                 std::io::ErrorKind::InvalidInput,
-                format!(
-                    "frames {start}..{end} requested, but the recording has {} frames",
-                    self.n_frames
-                ),
+                format!("frames {start}..{end} requested, but the recording has {} frames", self.n_frames),
             )));
         }
         let n_frames = (end - start) as usize;
@@ -334,8 +293,7 @@ impl Recording {
         match self.layout {
             Layout::TimeMajor => {
                 let frame_bytes = n_channels * item;
-                let map = map_range(&file, start * frame_bytes as u64, n_frames * frame_bytes)
-                    .map_err(io)?;
+                let map = map_range(&file, start * frame_bytes as u64, n_frames * frame_bytes).map_err(io)?;
                 if dtype == Dtype::F32 && gain == 1.0 && offset == 0.0 {
                     // The common case of an already-scaled f32 file (the filter
                     // stage's own output): a straight copy.
@@ -351,12 +309,8 @@ impl Recording {
             Layout::ChannelMajor => {
                 let channel_bytes = self.n_frames * item as u64;
                 for channel in 0..n_channels {
-                    let map = map_range(
-                        &file,
-                        channel as u64 * channel_bytes + start * item as u64,
-                        n_frames * item,
-                    )
-                    .map_err(io)?;
+                    let map = map_range(&file, channel as u64 * channel_bytes + start * item as u64, n_frames * item)
+                        .map_err(io)?;
                     for (frame, bytes) in map.chunks_exact(item).enumerate() {
                         out[frame * n_channels + channel] = convert(bytes);
                     }
@@ -410,33 +364,17 @@ fn one_line(message: &str) -> String {
 /// Missing columns, unparsable or non-finite numbers, channels out of range,
 /// duplicate channels or positions, and channels without a row.
 pub fn read_electrodes(path: &Path, n_channels: usize) -> Result<Vec<Electrode>, RecordingError> {
-    let text = std::fs::read_to_string(path).map_err(|source| RecordingError::Io {
-        path: path.to_path_buf(),
-        source,
-    })?;
-    let table_error = |line: usize, message: String| RecordingError::ElectrodeTable {
-        path: path.to_path_buf(),
-        line,
-        message,
-    };
-    let mut lines = text
-        .lines()
-        .enumerate()
-        .map(|(i, l)| (i + 1, l.trim_end_matches('\r')))
-        .filter(|(_, l)| !l.trim().is_empty());
-    let (header_line, header) = lines
-        .next()
-        .ok_or_else(|| table_error(1, "the table is empty (no header)".into()))?;
+    let text =
+        std::fs::read_to_string(path).map_err(|source| RecordingError::Io { path: path.to_path_buf(), source })?;
+    let table_error =
+        |line: usize, message: String| RecordingError::ElectrodeTable { path: path.to_path_buf(), line, message };
+    let mut lines =
+        text.lines().enumerate().map(|(i, l)| (i + 1, l.trim_end_matches('\r'))).filter(|(_, l)| !l.trim().is_empty());
+    let (header_line, header) = lines.next().ok_or_else(|| table_error(1, "the table is empty (no header)".into()))?;
     let columns: Vec<String> = header.split(',').map(|c| c.trim().to_string()).collect();
     let find = |name: &str| {
         columns.iter().position(|c| c == name).ok_or_else(|| {
-            table_error(
-                header_line,
-                format!(
-                    "the header has no column {name} (columns: {})",
-                    columns.join(",")
-                ),
-            )
+            table_error(header_line, format!("the header has no column {name} (columns: {})", columns.join(",")))
         })
     };
     let (channel_col, x_col, y_col) = (find("channel")?, find("x_um")?, find("y_um")?);
@@ -448,38 +386,25 @@ pub fn read_electrodes(path: &Path, n_channels: usize) -> Result<Vec<Electrode>,
     for (line, row) in lines {
         let fields: Vec<&str> = row.split(',').map(str::trim).collect();
         if fields.len() < columns.len() {
-            return Err(table_error(
-                line,
-                format!(
-                    "{} fields, but the header has {}",
-                    fields.len(),
-                    columns.len()
-                ),
-            ));
+            return Err(table_error(line, format!("{} fields, but the header has {}", fields.len(), columns.len())));
         }
         let channel: usize = fields[channel_col].parse().map_err(|_| {
-            table_error(
-                line,
-                format!(
-                    "channel is \"{}\", but it must be a whole number from 0",
-                    fields[channel_col]
-                ),
-            )
+            table_error(line, format!("channel is \"{}\", but it must be a whole number from 0", fields[channel_col]))
         })?;
         let number = |col: usize, name: &str| -> Result<f64, RecordingError> {
             match fields[col].parse::<f64>() {
                 Ok(v) if v.is_finite() => Ok(v),
-                _ => Err(table_error(
-                    line,
-                    format!("{name} is \"{}\", but it must be a finite number", fields[col]),
-                )),
+                _ => Err(table_error(line, format!("{name} is \"{}\", but it must be a finite number", fields[col]))),
             }
         };
         let (x_um, y_um) = (number(x_col, "x_um")?, number(y_col, "y_um")?);
         if channel >= n_channels {
             return Err(table_error(
                 line,
-                format!("channel {channel} does not exist: the recording has {n_channels} channels (0..{})", n_channels - 1),
+                format!(
+                    "channel {channel} does not exist: the recording has {n_channels} channels (0..{})",
+                    n_channels - 1
+                ),
             ));
         }
         if slots[channel].is_some() {
@@ -585,12 +510,7 @@ pub struct F32RecordingWriter {
 
 impl F32RecordingWriter {
     /// Start `<folder>/<stem>.bin`, `<stem>.electrodes.csv`; `<stem>.toml` follows at finish.
-    pub fn create(
-        folder: &Path,
-        stem: &str,
-        sample_rate_hz: f64,
-        electrodes: &[Electrode],
-    ) -> std::io::Result<Self> {
+    pub fn create(folder: &Path, stem: &str, sample_rate_hz: f64, electrodes: &[Electrode]) -> std::io::Result<Self> {
         write_electrodes(&folder.join(format!("{stem}.electrodes.csv")), electrodes)?;
         let data = File::create(folder.join(format!("{stem}.bin")))?;
         Ok(F32RecordingWriter {

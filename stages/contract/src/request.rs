@@ -63,11 +63,10 @@ impl StageRequest {
     /// The file cannot be read or is not a request.
     pub fn load(path: &Path) -> Result<Self, ContractError> {
         let text = std::fs::read_to_string(path).map_err(|e| ContractError::io(path, e))?;
-        let mut request: StageRequest =
-            serde_json::from_str(&text).map_err(|e| ContractError::Format {
-                path: path.to_path_buf(),
-                message: format!("not a stage request: {e}"),
-            })?;
+        let mut request: StageRequest = serde_json::from_str(&text).map_err(|e| ContractError::Format {
+            path: path.to_path_buf(),
+            message: format!("not a stage request: {e}"),
+        })?;
         if request.contract_version != CONTRACT_VERSION {
             return Err(ContractError::Format {
                 path: path.to_path_buf(),
@@ -106,10 +105,7 @@ impl StageRequest {
     /// [`ContractError::MissingArtifact`] when no earlier stage wrote `name`.
     pub fn require_artifact(&self, name: &str) -> Result<&Path, ContractError> {
         self.artifact(name)
-            .ok_or_else(|| ContractError::MissingArtifact {
-                path: self.path.clone(),
-                name: name.to_string(),
-            })
+            .ok_or_else(|| ContractError::MissingArtifact { path: self.path.clone(), name: name.to_string() })
     }
 
     pub fn output(&self, file: &str) -> PathBuf {
@@ -173,11 +169,7 @@ impl ProgressReporter {
         if due || self.done == self.total {
             self.last = Some(Instant::now());
             let mut err = std::io::stderr().lock();
-            let _ = writeln!(
-                err,
-                "{PROGRESS_PREFIX} {} {} {}",
-                self.done, self.total, self.unit
-            );
+            let _ = writeln!(err, "{PROGRESS_PREFIX} {} {} {}", self.done, self.total, self.unit);
         }
     }
 }
@@ -220,29 +212,20 @@ mod tests {
 
     #[test]
     fn unknown_parameter_is_named_with_its_stage() {
-        let err = request(serde_json::json!({"threshold_sgma": 4.0}))
-            .params::<Params>()
-            .unwrap_err()
-            .to_string();
+        let err = request(serde_json::json!({"threshold_sgma": 4.0})).params::<Params>().unwrap_err().to_string();
         assert!(err.contains("detect.params"), "{err}");
         assert!(err.contains("threshold_sgma"), "{err}");
     }
 
     #[test]
     fn mistyped_parameter_names_its_key() {
-        let err = request(serde_json::json!({"threshold_sigma": "five"}))
-            .params::<Params>()
-            .unwrap_err()
-            .to_string();
+        let err = request(serde_json::json!({"threshold_sigma": "five"})).params::<Params>().unwrap_err().to_string();
         assert!(err.contains("detect.params.threshold_sigma"), "{err}");
     }
 
     #[test]
     fn progress_lines_round_trip() {
-        assert_eq!(
-            parse_progress_line("spikeyard:progress 5 10 frames"),
-            Some((5, 10, "frames".to_string()))
-        );
+        assert_eq!(parse_progress_line("spikeyard:progress 5 10 frames"), Some((5, 10, "frames".to_string())));
         assert_eq!(parse_progress_line("warning: x"), None);
     }
 }

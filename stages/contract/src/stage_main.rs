@@ -50,14 +50,12 @@ pub fn stage_main(
             return ExitCode::from(EXIT_BAD_INPUT);
         }
     };
-    let outcome = StageRequest::load(&request_path)
-        .map_err(StageFailure::bad_input)
-        .and_then(|request| {
-            let mut report = run(&request)?;
-            report.stage_version = format!("{executable} {version}");
-            report.write(&request.output_dir).map_err(StageFailure::failed)?;
-            Ok(())
-        });
+    let outcome = StageRequest::load(&request_path).map_err(StageFailure::bad_input).and_then(|request| {
+        let mut report = run(&request)?;
+        report.stage_version = format!("{executable} {version}");
+        report.write(&request.output_dir).map_err(StageFailure::failed)?;
+        Ok(())
+    });
     match outcome {
         Ok(()) => ExitCode::SUCCESS,
         Err(failure) => {

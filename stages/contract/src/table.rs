@@ -28,32 +28,17 @@ impl TableWriter {
     ///
     /// # Errors
     /// The temporary file cannot be created.
-    pub fn create(
-        path: &Path,
-        schema: SchemaRef,
-        metadata: &[(&str, String)],
-    ) -> Result<Self, ContractError> {
+    pub fn create(path: &Path, schema: SchemaRef, metadata: &[(&str, String)]) -> Result<Self, ContractError> {
         let temporary_path = temporary_name(path);
         let file = File::create(&temporary_path).map_err(|e| ContractError::io(&temporary_path, e))?;
-        let key_values = metadata
-            .iter()
-            .map(|(k, v)| KeyValue::new(k.to_string(), v.clone()))
-            .collect();
+        let key_values = metadata.iter().map(|(k, v)| KeyValue::new(k.to_string(), v.clone())).collect();
         let properties = WriterProperties::builder()
             .set_compression(Compression::SNAPPY)
             .set_key_value_metadata(Some(key_values))
             .build();
-        let writer = ArrowWriter::try_new(file, schema, Some(properties)).map_err(|source| {
-            ContractError::Parquet {
-                path: path.to_path_buf(),
-                source,
-            }
-        })?;
-        Ok(TableWriter {
-            final_path: path.to_path_buf(),
-            temporary_path,
-            writer,
-        })
+        let writer = ArrowWriter::try_new(file, schema, Some(properties))
+            .map_err(|source| ContractError::Parquet { path: path.to_path_buf(), source })?;
+        Ok(TableWriter { final_path: path.to_path_buf(), temporary_path, writer })
     }
 
     /// Append a batch.
@@ -61,12 +46,7 @@ impl TableWriter {
     /// # Errors
     /// The batch does not match the schema, or writing fails.
     pub fn write(&mut self, batch: &RecordBatch) -> Result<(), ContractError> {
-        self.writer
-            .write(batch)
-            .map_err(|source| ContractError::Parquet {
-                path: self.final_path.clone(),
-                source,
-            })
+        self.writer.write(batch).map_err(|source| ContractError::Parquet { path: self.final_path.clone(), source })
     }
 
     /// Write the footer, sync, and rename to the final name.
@@ -77,23 +57,15 @@ impl TableWriter {
         let file = self
             .writer
             .into_inner()
-            .map_err(|source| ContractError::Parquet {
-                path: self.final_path.clone(),
-                source,
-            })?;
-        file.sync_all()
-            .map_err(|e| ContractError::io(&self.temporary_path, e))?;
-        std::fs::rename(&self.temporary_path, &self.final_path)
-            .map_err(|e| ContractError::io(&self.final_path, e))?;
+            .map_err(|source| ContractError::Parquet { path: self.final_path.clone(), source })?;
+        file.sync_all().map_err(|e| ContractError::io(&self.temporary_path, e))?;
+        std::fs::rename(&self.temporary_path, &self.final_path).map_err(|e| ContractError::io(&self.final_path, e))?;
         Ok(self.final_path)
     }
 }
 
 fn temporary_name(path: &Path) -> PathBuf {
-    let name = path
-        .file_name()
-        .map(|n| n.to_string_lossy().into_owned())
-        .unwrap_or_default();
+    let name = path.file_name().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default();
     path.with_file_name(format!(".{name}.partial"))
 }
 
@@ -101,11 +73,7 @@ fn temporary_name(path: &Path) -> PathBuf {
 ///
 /// # Errors
 /// As [`TableWriter`].
-pub fn write_table(
-    path: &Path,
-    batch: &RecordBatch,
-    metadata: &[(&str, String)],
-) -> Result<PathBuf, ContractError> {
+pub fn write_table(path: &Path, batch: &RecordBatch, metadata: &[(&str, String)]) -> Result<PathBuf, ContractError> {
     let mut writer = TableWriter::create(path, batch.schema(), metadata)?;
     writer.write(batch)?;
     writer.finish()
@@ -119,16 +87,8 @@ pub fn read_table(path: &Path) -> Result<Vec<RecordBatch>, ContractError> {
     let file = File::open(path).map_err(|e| ContractError::io(path, e))?;
     let reader = parquet::arrow::arrow_reader::ParquetRecordBatchReaderBuilder::try_new(file)
         .and_then(|b| b.build())
-        .map_err(|source| ContractError::Parquet {
-            path: path.to_path_buf(),
-            source,
-        })?;
-    reader
-        .collect::<Result<Vec<_>, _>>()
-        .map_err(|source| ContractError::Arrow {
-            path: path.to_path_buf(),
-            source,
-        })
+        .map_err(|source| ContractError::Parquet { path: path.to_path_buf(), source })?;
+    reader.collect::<Result<Vec<_>, _>>().map_err(|source| ContractError::Arrow { path: path.to_path_buf(), source })
 }
 
 /// A column of a batch by name, downcast to `T`.
@@ -136,22 +96,14 @@ pub fn read_table(path: &Path) -> Result<Vec<RecordBatch>, ContractError> {
 /// # Errors
 /// [`ContractError::Format`] naming the table and the column when it is
 /// missing or of another type.
-pub fn column<'a, T: 'static>(
-    path: &Path,
-    batch: &'a RecordBatch,
-    name: &str,
-) -> Result<&'a T, ContractError> {
-    let array = batch.column_by_name(name).ok_or_else(|| ContractError::Format {
+pub fn column<'a, T: 'static>(path: &Path, batch: &'a RecordBatch, name: &str) -> Result<&'a T, ContractError> {
+    let array = batch
+        .column_by_name(name)
+        .ok_or_else(|| ContractError::Format { path: path.to_path_buf(), message: format!("no column {name}") })?;
+    array.as_any().downcast_ref::<T>().ok_or_else(|| ContractError::Format {
         path: path.to_path_buf(),
-        message: format!("no column {name}"),
-    })?;
-    array
-        .as_any()
-        .downcast_ref::<T>()
-        .ok_or_else(|| ContractError::Format {
-            path: path.to_path_buf(),
-            message: format!("column {name} has type {}", array.data_type()),
-        })
+        message: format!("column {name} has type {}", array.data_type()),
+    })
 }
 
 #[cfg(test)]
@@ -171,10 +123,7 @@ mod tests {
         ]));
         let batch = RecordBatch::try_new(
             schema,
-            vec![
-                Arc::new(Int64Array::from(vec![1, 2])),
-                Arc::new(Float64Array::from(vec![0.5, 1.0])),
-            ],
+            vec![Arc::new(Int64Array::from(vec![1, 2])), Arc::new(Float64Array::from(vec![0.5, 1.0]))],
         )
         .unwrap();
         write_table(&path, &batch, &[(META_WRITER, "test".into())]).unwrap();
@@ -182,10 +131,8 @@ mod tests {
         let samples: &Int64Array = column(&path, &back[0], "sample").unwrap();
         assert_eq!(samples.values().to_vec(), vec![1, 2]);
         assert!(column::<Int64Array>(&path, &back[0], "time_s").is_err());
-        let names: Vec<_> = std::fs::read_dir(dir.path())
-            .unwrap()
-            .map(|e| e.unwrap().file_name().into_string().unwrap())
-            .collect();
+        let names: Vec<_> =
+            std::fs::read_dir(dir.path()).unwrap().map(|e| e.unwrap().file_name().into_string().unwrap()).collect();
         assert_eq!(names, vec!["t.parquet"]);
     }
 }

@@ -6,7 +6,14 @@ use std::path::{Path, PathBuf};
 
 /// Write a time-major f32 µV recording of `samples` (frames × `n_channels`)
 /// with electrodes on a line at `pitch_um`, and return its description path.
-pub fn write_f32_recording(folder: &Path, name: &str, sample_rate_hz: f64, n_channels: usize, pitch_um: f64, samples: &[f32]) -> PathBuf {
+pub fn write_f32_recording(
+    folder: &Path,
+    name: &str,
+    sample_rate_hz: f64,
+    n_channels: usize,
+    pitch_um: f64,
+    samples: &[f32],
+) -> PathBuf {
     let electrodes: Vec<Electrode> = (0..n_channels)
         .map(|c| Electrode { channel: c, x_um: c as f64 * pitch_um, y_um: 0.0, label: None, group: None })
         .collect();

@@ -23,8 +23,8 @@ impl Event {
 /// Scan one channel for threshold crossings.
 ///
 /// `x` holds frames starting at `first_frame`; crossings are looked for at
-/// positions `core` of `x` (position k crosses when x[k−1] is on the near
-/// side of the threshold and x[k] beyond it); the extremum is searched in
+/// positions `core` of `x` (position k crosses when `x[k−1]` is on the near
+/// side of the threshold and `x[k]` beyond it); the extremum is searched in
 /// `k..k + peak_frames` (clipped to `x`). `last_crossing` carries the dead
 /// time across chunks.
 #[allow(clippy::too_many_arguments)]
@@ -43,9 +43,15 @@ pub fn find_crossings(
     let start = core.start.max(1);
     for k in start..core.end {
         let (before, now) = (x[k - 1], x[k]);
-        let sign = if matches!(polarity, Polarity::Negative | Polarity::Both) && before >= -threshold_uv && now < -threshold_uv {
+        let sign = if matches!(polarity, Polarity::Negative | Polarity::Both)
+            && before >= -threshold_uv
+            && now < -threshold_uv
+        {
             -1.0f32
-        } else if matches!(polarity, Polarity::Positive | Polarity::Both) && before <= threshold_uv && now > threshold_uv {
+        } else if matches!(polarity, Polarity::Positive | Polarity::Both)
+            && before <= threshold_uv
+            && now > threshold_uv
+        {
             1.0
         } else {
             continue;
@@ -58,10 +64,11 @@ pub fn find_crossings(
         }
         *last_crossing = Some(frame);
         let end = (k + peak_frames).min(x.len());
-        let (peak, value) = x[k..end]
-            .iter()
-            .enumerate()
-            .fold((k, now), |best, (i, &v)| if sign * v > sign * best.1 { (k + i, v) } else { best });
+        let (peak, value) =
+            x[k..end]
+                .iter()
+                .enumerate()
+                .fold((k, now), |best, (i, &v)| if sign * v > sign * best.1 { (k + i, v) } else { best });
         out.push(Event { sample: first_frame + peak as u64, channel, amplitude_uv: value });
     }
 }
@@ -113,7 +120,8 @@ impl EventMerger {
             let low = events.partition_point(|e| e.sample + window < event.sample);
             let beaten = events[low..].iter().take_while(|e| e.sample <= event.sample + window).any(|other| {
                 other.key() != event.key()
-                    && (other.channel == event.channel || self.neighbours[event.channel as usize].binary_search(&other.channel).is_ok())
+                    && (other.channel == event.channel
+                        || self.neighbours[event.channel as usize].binary_search(&other.channel).is_ok())
                     && beats(other, &event)
             });
             if !beaten {
@@ -181,9 +189,8 @@ mod tests {
     #[test]
     fn merge_decision_does_not_depend_on_chunking() {
         let neighbours = vec![vec![1], vec![0, 2], vec![1]];
-        let events: Vec<Event> = (0..200u64)
-            .map(|i| event(i * 3 + (i % 4), (i % 3) as u32, -((i * 37 % 23) as f32) - 5.0))
-            .collect();
+        let events: Vec<Event> =
+            (0..200u64).map(|i| event(i * 3 + (i % 4), (i % 3) as u32, -((i * 37 % 23) as f32) - 5.0)).collect();
         let mut whole = vec![];
         let mut merger = EventMerger::new(neighbours.clone(), 6);
         merger.add(events.clone());

@@ -22,7 +22,9 @@ use kernel::{Event, EventMerger};
 use params::{DetectParams, ValidDetectParams};
 use rayon::prelude::*;
 use spikeyard_contract::table::{column, read_table, write_table, TableWriter, META_WRITER};
-use spikeyard_contract::{noise, ContractError, ProgressReporter, Recording, RecordingError, StageFailure, StageReport, StageRequest};
+use spikeyard_contract::{
+    noise, ContractError, ProgressReporter, Recording, RecordingError, StageFailure, StageReport, StageRequest,
+};
 use std::path::Path;
 use std::sync::Arc;
 
@@ -118,7 +120,11 @@ pub fn detect<E: From<RecordingError>>(
     let n_channels = recording.n_channels;
     let thresholds: Vec<f32> = noise_uv.iter().map(|s| (s * params.threshold_sigma) as f32).collect();
     let mut last_crossing: Vec<Option<u64>> = vec![None; n_channels];
-    let neighbours = if params.merge_radius_um > 0.0 { neighbours_within(recording, params.merge_radius_um) } else { vec![Vec::new(); n_channels] };
+    let neighbours = if params.merge_radius_um > 0.0 {
+        neighbours_within(recording, params.merge_radius_um)
+    } else {
+        vec![Vec::new(); n_channels]
+    };
     let mut merger = EventMerger::new(neighbours, params.merge_frames);
     let mut frames = Vec::new();
     let mut kept = Vec::new();
@@ -136,7 +142,18 @@ pub fn detect<E: From<RecordingError>>(
                 let mut last = last;
                 if usable[channel] && thresholds[channel] > 0.0 {
                     let x: Vec<f32> = frames.iter().skip(channel).step_by(n_channels).copied().collect();
-                    kernel::find_crossings(&x, chunk.read_start, core.clone(), thresholds[channel], params.polarity, params.peak_frames, params.dead_frames, channel as u32, &mut last, &mut events);
+                    kernel::find_crossings(
+                        &x,
+                        chunk.read_start,
+                        core.clone(),
+                        thresholds[channel],
+                        params.polarity,
+                        params.peak_frames,
+                        params.dead_frames,
+                        channel as u32,
+                        &mut last,
+                        &mut events,
+                    );
                 }
                 (events, last)
             })
@@ -160,7 +177,9 @@ fn events_batch(events: &[Event], sample_rate_hz: f64, noise_uv: &[f64]) -> Reco
         Arc::new(Float64Array::from_iter_values(events.iter().map(|e| e.sample as f64 / sample_rate_hz))),
         Arc::new(Int32Array::from_iter_values(events.iter().map(|e| e.channel as i32))),
         Arc::new(Float32Array::from_iter_values(events.iter().map(|e| e.amplitude_uv))),
-        Arc::new(Float32Array::from_iter_values(events.iter().map(|e| (e.amplitude_uv as f64 / noise_uv[e.channel as usize]) as f32))),
+        Arc::new(Float32Array::from_iter_values(
+            events.iter().map(|e| (e.amplitude_uv as f64 / noise_uv[e.channel as usize]) as f32),
+        )),
     ];
     RecordBatch::try_new(events_schema(), columns).expect("event columns match their schema")
 }
@@ -181,13 +200,18 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     let recording = Recording::open(&input).map_err(StageFailure::bad_input)?;
     let params: DetectParams = request.params().map_err(StageFailure::bad_input)?;
     let valid = params.check(recording.sample_rate_hz).map_err(|message| {
-        StageFailure::bad_input(ContractError::Param { path: request.path.clone(), key: format!("{}.params", request.stage), message })
+        StageFailure::bad_input(ContractError::Param {
+            path: request.path.clone(),
+            key: format!("{}.params", request.stage),
+            message,
+        })
     })?;
     let usable = match (valid.skip_flagged_channels, request.artifact(CHANNEL_QC_TABLE)) {
         (true, Some(path)) => read_usable_channels(path, recording.n_channels).map_err(StageFailure::bad_input)?,
         _ => vec![true; recording.n_channels],
     };
-    let noise_uv = estimate_noise(&recording, valid.noise_windows, valid.noise_window_frames).map_err(StageFailure::failed)?;
+    let noise_uv =
+        estimate_noise(&recording, valid.noise_windows, valid.noise_window_frames).map_err(StageFailure::failed)?;
     let metadata = [
         (META_WRITER, format!("{EXECUTABLE} {VERSION}")),
         ("spikeyard.params", serde_json::to_string(&params).unwrap_or_default()),
@@ -209,7 +233,8 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     .expect("noise columns match their schema");
     write_table(&request.output(CHANNEL_NOISE_TABLE), &noise_batch, &metadata).map_err(StageFailure::failed)?;
 
-    let mut writer = TableWriter::create(&request.output(EVENTS_TABLE), events_schema(), &metadata).map_err(StageFailure::failed)?;
+    let mut writer =
+        TableWriter::create(&request.output(EVENTS_TABLE), events_schema(), &metadata).map_err(StageFailure::failed)?;
     let mut progress = ProgressReporter::new(recording.n_frames, "frames");
     let mut n_events = 0usize;
     detect(&recording, &valid, &noise_uv, &usable, &mut progress, |events: &[Event]| {

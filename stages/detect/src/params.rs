@@ -99,8 +99,11 @@ impl DetectParams {
         if self.noise_windows == 0 {
             problems.push("noise_windows is 0, but it must be at least 1".into());
         }
-        let noise_window_frames = frames("noise_window_seconds", self.noise_window_seconds * 1e3, 1e3 / sample_rate_hz, &mut problems) as usize;
-        let chunk_frames = frames("chunk_seconds", self.chunk_seconds * 1e3, 1e3 / sample_rate_hz, &mut problems) as usize;
+        let noise_window_frames =
+            frames("noise_window_seconds", self.noise_window_seconds * 1e3, 1e3 / sample_rate_hz, &mut problems)
+                as usize;
+        let chunk_frames =
+            frames("chunk_seconds", self.chunk_seconds * 1e3, 1e3 / sample_rate_hz, &mut problems) as usize;
         if !problems.is_empty() {
             return Err(problems.join("; "));
         }

@@ -43,11 +43,7 @@ impl Section {
 /// Cascade response |H| at `frequency_hz` for one pass.
 pub fn cascade_gain(sections: &[Section], frequency_hz: f64, sample_rate_hz: f64) -> f64 {
     let omega = 2.0 * PI * frequency_hz / sample_rate_hz;
-    sections
-        .iter()
-        .map(|s| s.response(omega))
-        .fold(Complex64::new(1.0, 0.0), |acc, h| acc * h)
-        .norm()
+    sections.iter().map(|s| s.response(omega)).fold(Complex64::new(1.0, 0.0), |acc, h| acc * h).norm()
 }
 
 /// Butterworth band-pass of `order` (per edge; 2·order poles) between
@@ -80,24 +76,14 @@ pub fn butterworth_bandpass(order: usize, low_hz: f64, high_hz: f64, sample_rate
     }
     // Bilinear transform. Band-pass zeros: `order` at s = 0 (→ z = 1) and
     // `order` at infinity (→ z = −1).
-    let digital_poles: Vec<Complex64> = analog_poles
-        .iter()
-        .map(|s| (fs2 + s) / (fs2 - s))
-        .collect();
+    let digital_poles: Vec<Complex64> = analog_poles.iter().map(|s| (fs2 + s) / (fs2 - s)).collect();
     let analog_gain = bandwidth.powi(order as i32);
     let zeros_term = Complex64::new(fs2, 0.0).powi(order as i32);
-    let poles_term = analog_poles
-        .iter()
-        .fold(Complex64::new(1.0, 0.0), |acc, s| acc * (fs2 - s));
+    let poles_term = analog_poles.iter().fold(Complex64::new(1.0, 0.0), |acc, s| acc * (fs2 - s));
     let gain = analog_gain * (zeros_term / poles_term).re;
 
-    let mut sections: Vec<Section> = pair_poles(&digital_poles)
-        .into_iter()
-        .map(|a| Section {
-            b: [1.0, 0.0, -1.0],
-            a,
-        })
-        .collect();
+    let mut sections: Vec<Section> =
+        pair_poles(&digital_poles).into_iter().map(|a| Section { b: [1.0, 0.0, -1.0], a }).collect();
     sections.sort_by(|x, y| x.pole_radius().total_cmp(&y.pole_radius()));
     for b in sections[0].b.iter_mut() {
         *b *= gain;
@@ -137,10 +123,7 @@ pub fn notch(notch_hz: f64, q: f64, sample_rate_hz: f64) -> Section {
     let beta = (bandwidth / 2.0).tan();
     let gain = 1.0 / (1.0 + beta);
     let c = -2.0 * w0.cos();
-    Section {
-        b: [gain, gain * c, gain],
-        a: [gain * c, 2.0 * gain - 1.0],
-    }
+    Section { b: [gain, gain * c, gain], a: [gain * c, 2.0 * gain - 1.0] }
 }
 
 /// Windowed-sinc band-pass FIR taps (Hamming window), `n_taps` odd,
@@ -158,17 +141,13 @@ pub fn fir_bandpass(n_taps: usize, low_hz: f64, high_hz: f64, sample_rate_hz: f6
     let mut taps: Vec<f64> = (-half..=half)
         .map(|k| {
             let ideal = sinc_lowpass(f2, k) - sinc_lowpass(f1, k);
-            let window =
-                0.54 - 0.46 * (2.0 * PI * (k + half) as f64 / (n_taps as f64 - 1.0)).cos();
+            let window = 0.54 - 0.46 * (2.0 * PI * (k + half) as f64 / (n_taps as f64 - 1.0)).cos();
             ideal * window
         })
         .collect();
     let centre = 2.0 * PI * (low_hz * high_hz).sqrt() / sample_rate_hz;
-    let response: Complex64 = taps
-        .iter()
-        .enumerate()
-        .map(|(i, t)| Complex64::from_polar(*t, -centre * (i as f64 - half as f64)))
-        .sum();
+    let response: Complex64 =
+        taps.iter().enumerate().map(|(i, t)| Complex64::from_polar(*t, -centre * (i as f64 - half as f64))).sum();
     let norm = response.norm();
     for t in taps.iter_mut() {
         *t /= norm;
@@ -269,14 +248,17 @@ mod tests {
         let (b, a) = to_transfer_function(&sections);
         let k = 0.11065284440041205;
         assert_close(&b, &[k, 0.0, -2.0 * k, 0.0, k], 1e-9);
-        assert_close(
-            &a,
-            &[1.0, -2.7298121043894925, 2.836305607624567, -1.4085524920648311, 0.3068405187108478],
-            1e-9,
-        );
+        assert_close(&a, &[1.0, -2.7298121043894925, 2.836305607624567, -1.4085524920648311, 0.3068405187108478], 1e-9);
         assert_close(
             &impulse_response(&sections, 6),
-            &[0.110652844400412, 0.302061474029372, 0.28942009620179, 0.0891841689626313, -0.0752583076336643, -0.143415899289354],
+            &[
+                0.110652844400412,
+                0.302061474029372,
+                0.28942009620179,
+                0.0891841689626313,
+                -0.0752583076336643,
+                -0.143415899289354,
+            ],
             1e-9,
         );
     }
@@ -284,7 +266,9 @@ mod tests {
     // REFERENCES.md F1: one pass is −3.0103 dB at each cutoff, two passes −6.0206 dB.
     #[test]
     fn butterworth_is_half_power_at_each_cutoff() {
-        for (order, low, high, fs) in [(3, 300.0, 6000.0, 30000.0), (2, 300.0, 3000.0, 20000.0), (5, 500.0, 5000.0, 25000.0)] {
+        for (order, low, high, fs) in
+            [(3, 300.0, 6000.0, 30000.0), (2, 300.0, 3000.0, 20000.0), (5, 500.0, 5000.0, 25000.0)]
+        {
             let sections = butterworth_bandpass(order, low, high, fs);
             for f in [low, high] {
                 let one_pass_db = 20.0 * cascade_gain(&sections, f, fs).log10();
@@ -330,11 +314,7 @@ mod tests {
         let taps = fir_bandpass(401, 300.0, 6000.0, 30000.0);
         let gain = |f: f64| {
             let w = 2.0 * PI * f / 30000.0;
-            taps.iter()
-                .enumerate()
-                .map(|(i, t)| Complex64::from_polar(*t, -w * i as f64))
-                .sum::<Complex64>()
-                .norm()
+            taps.iter().enumerate().map(|(i, t)| Complex64::from_polar(*t, -w * i as f64)).sum::<Complex64>().norm()
         };
         assert!((gain(1500.0) - 1.0).abs() < 0.01);
         assert!(gain(20.0) < 0.01);

@@ -40,7 +40,8 @@ impl FilterEngine {
         let mut margin = 0usize;
         let fir = match params.design {
             Design::Butterworth => {
-                let bandpass = design::butterworth_bandpass(params.order, params.low_hz, params.high_hz, sample_rate_hz);
+                let bandpass =
+                    design::butterworth_bandpass(params.order, params.low_hz, params.high_hz, sample_rate_hz);
                 margin += decay_frames(&bandpass, BANDPASS_DECAY_TOLERANCE);
                 iir.extend(bandpass);
                 None
@@ -178,7 +179,7 @@ impl FirConvolver {
         FirConvolver { taps, block, spectrum, forward, inverse }
     }
 
-    /// y[n] = Σₖ taps[k + h]·x[n − k] for k in −h..=h, with x = 0 outside.
+    /// `y[n] = Σₖ taps[k + h]·x[n − k]` for k in −h..=h, with x = 0 outside.
     pub fn convolve_centered(&self, x: &[f64], y: &mut Vec<f64>, work: &mut Vec<Complex64>) {
         if self.taps.len() <= DIRECT_FIR_MAX_TAPS {
             convolve_centered_direct(&self.taps, x, y);
@@ -238,9 +239,8 @@ pub fn convolve_centered_direct(taps: &[f64], x: &[f64], y: &mut Vec<f64>) {
 /// the median of its group subtracted. `frames` is time-major.
 pub fn subtract_median_reference(frames: &mut [f32], n_channels: usize, groups: &[usize], usable: &[bool]) {
     let n_groups = groups.iter().copied().max().map_or(0, |g| g + 1);
-    let members: Vec<Vec<usize>> = (0..n_groups)
-        .map(|g| (0..n_channels).filter(|&c| groups[c] == g && usable[c]).collect())
-        .collect();
+    let members: Vec<Vec<usize>> =
+        (0..n_groups).map(|g| (0..n_channels).filter(|&c| groups[c] == g && usable[c]).collect()).collect();
     let mut values = Vec::with_capacity(n_channels);
     let mut medians = vec![0.0f32; n_groups];
     for frame in frames.chunks_exact_mut(n_channels) {

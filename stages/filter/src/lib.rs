@@ -29,8 +29,7 @@ use rayon::prelude::*;
 use spikeyard_contract::recording::F32RecordingWriter;
 use spikeyard_contract::table::{write_table, META_WRITER};
 use spikeyard_contract::{
-    noise, Chunk, ContractError, ProgressReporter, Recording, RecordingError, StageFailure, StageReport,
-    StageRequest,
+    noise, Chunk, ContractError, ProgressReporter, Recording, RecordingError, StageFailure, StageReport, StageRequest,
 };
 use std::sync::Arc;
 
@@ -105,7 +104,11 @@ pub struct ChannelQc {
 ///
 /// # Errors
 /// Reading the recording fails.
-pub fn measure_qc(engine: &FilterEngine, recording: &Recording, params: &ValidFilterParams) -> Result<ChannelQc, RecordingError> {
+pub fn measure_qc(
+    engine: &FilterEngine,
+    recording: &Recording,
+    params: &ValidFilterParams,
+) -> Result<ChannelQc, RecordingError> {
     let n_channels = recording.n_channels;
     let windows = recording.spread_windows(params.qc_windows, params.qc_window_frames, engine.margin_frames());
     let window_frames = windows[0].core_frames();
@@ -165,7 +168,11 @@ fn qc_tables(recording: &Recording, params: &ValidFilterParams, qc: &ChannelQc) 
         .psd
         .iter()
         .map(|psd| {
-            let (bin, _) = psd.iter().enumerate().skip(1).fold((0, f64::MIN), |best, (b, &p)| if p > best.1 { (b, p) } else { best });
+            let (bin, _) = psd
+                .iter()
+                .enumerate()
+                .skip(1)
+                .fold((0, f64::MIN), |best, (b, &p)| if p > best.1 { (b, p) } else { best });
             welch.frequency_hz(bin)
         })
         .collect();
@@ -209,7 +216,8 @@ fn qc_tables(recording: &Recording, params: &ValidFilterParams, qc: &ChannelQc) 
         Arc::new(Float64Array::from_iter_values((0..n).flat_map(|_| (0..bins).map(|b| welch.frequency_hz(b))))),
         Arc::new(Float64Array::from_iter_values(qc.psd.iter().flatten().copied())),
     ];
-    let psd_batch = RecordBatch::try_new(Arc::new(Schema::new(psd_fields)), psd_columns).expect("PSD columns match their schema");
+    let psd_batch =
+        RecordBatch::try_new(Arc::new(Schema::new(psd_fields)), psd_columns).expect("PSD columns match their schema");
     (qc_batch, psd_batch)
 }
 
@@ -221,11 +229,7 @@ fn reference_groups(recording: &Recording, by_group: bool) -> Vec<usize> {
     let mut names: Vec<&str> = recording.electrodes.iter().map(|e| e.group.as_deref().unwrap_or("")).collect();
     names.sort_unstable();
     names.dedup();
-    recording
-        .electrodes
-        .iter()
-        .map(|e| names.binary_search(&e.group.as_deref().unwrap_or("")).unwrap_or(0))
-        .collect()
+    recording.electrodes.iter().map(|e| names.binary_search(&e.group.as_deref().unwrap_or("")).unwrap_or(0)).collect()
 }
 
 /// Run the stage on a request.
@@ -267,8 +271,9 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     let groups = reference_groups(&recording, valid.reference_by_group);
     let chunk_frames = valid.chunk_frames.max(engine.margin_frames());
     let chunks = recording.chunks(chunk_frames, engine.margin_frames());
-    let mut writer = F32RecordingWriter::create(&request.output_dir, "filtered", recording.sample_rate_hz, &recording.electrodes)
-        .map_err(|e| output(e, "filtered.bin"))?;
+    let mut writer =
+        F32RecordingWriter::create(&request.output_dir, "filtered", recording.sample_rate_hz, &recording.electrodes)
+            .map_err(|e| output(e, "filtered.bin"))?;
     let mut progress = ProgressReporter::new(recording.n_frames, "frames");
     let (mut raw, mut filtered) = (Vec::new(), Vec::new());
     for chunk in &chunks {
@@ -359,14 +364,23 @@ mod tests {
         let valid = FilterParams::default().check(fs).unwrap();
         let engine = FilterEngine::new(&valid, fs);
         let n = (fs * 2.0) as usize;
-        let input: Vec<f32> = (0..n).map(|i| (2.0 * std::f64::consts::PI * frequency_hz * i as f64 / fs).sin() as f32).collect();
+        let input: Vec<f32> =
+            (0..n).map(|i| (2.0 * std::f64::consts::PI * frequency_hz * i as f64 / fs).sin() as f32).collect();
         let mut out = vec![0.0f32; n];
-        engine.filter_channel(&input, engine.margin_frames(), engine.margin_frames(), 0, &mut out, &mut Scratch::default());
+        engine.filter_channel(
+            &input,
+            engine.margin_frames(),
+            engine.margin_frames(),
+            0,
+            &mut out,
+            &mut Scratch::default(),
+        );
         // Skip 0.5 s at each end (the slowest pole decays in ≈ 33 samples).
         let period = fs / frequency_hz;
         let periods = ((n as f64 - fs) / period).floor();
         let (start, end) = ((fs * 0.5) as usize, (fs * 0.5 + periods * period).round() as usize);
-        let rms = |x: &[f32]| (x[start..end].iter().map(|v| (*v as f64).powi(2)).sum::<f64>() / (end - start) as f64).sqrt();
+        let rms =
+            |x: &[f32]| (x[start..end].iter().map(|v| (*v as f64).powi(2)).sum::<f64>() / (end - start) as f64).sqrt();
         rms(&out) / rms(&input)
     }
 

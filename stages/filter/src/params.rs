@@ -174,7 +174,7 @@ impl FilterParams {
         if !(self.dead_below_ratio >= 0.0 && self.dead_below_ratio < 1.0) {
             problems.push(format!("dead_below_ratio is {}, but it must be in [0, 1)", self.dead_below_ratio));
         }
-        if !(self.noisy_above_ratio > 1.0) {
+        if self.noisy_above_ratio.is_nan() || self.noisy_above_ratio <= 1.0 {
             problems.push(format!("noisy_above_ratio is {}, but it must be above 1", self.noisy_above_ratio));
         }
         if !problems.is_empty() {
@@ -235,6 +235,9 @@ mod tests {
     fn every_broken_rule_is_reported_at_once() {
         let params = FilterParams { order: 12, notch_hz: -5.0, qc_windows: 0, ..Default::default() };
         let message = params.check(30000.0).unwrap_err();
-        assert!(message.contains("order") && message.contains("notch_hz") && message.contains("qc_windows"), "{message}");
+        assert!(
+            message.contains("order") && message.contains("notch_hz") && message.contains("qc_windows"),
+            "{message}"
+        );
     }
 }

@@ -17,9 +17,8 @@ pub struct Welch {
 
 impl Welch {
     pub fn new(segment: usize, sample_rate_hz: f64) -> Self {
-        let window: Vec<f64> = (0..segment)
-            .map(|n| 0.5 - 0.5 * (2.0 * std::f64::consts::PI * n as f64 / segment as f64).cos())
-            .collect();
+        let window: Vec<f64> =
+            (0..segment).map(|n| 0.5 - 0.5 * (2.0 * std::f64::consts::PI * n as f64 / segment as f64).cos()).collect();
         let power: f64 = window.iter().map(|w| w * w).sum();
         let fft = FftPlanner::new().plan_fft_forward(segment);
         Welch { segment, window, scale: 1.0 / (sample_rate_hz * power), fft, sample_rate_hz }
