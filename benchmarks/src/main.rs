@@ -101,16 +101,27 @@ fn main() -> anyhow::Result<()> {
     let total = started.elapsed().as_secs_f64();
 
     let duration = recording.duration_s();
-    println!("\n## spikeyard benchmark: {} ({} channels, {} Hz, {:.0} s, i16)\n", scenario.name, recording.n_channels, recording.sample_rate_hz, duration);
+    println!(
+        "\n## spikeyard benchmark: {} ({} channels, {} Hz, {:.0} s, i16)\n",
+        scenario.name, recording.n_channels, recording.sample_rate_hz, duration
+    );
     println!("machine: {} cores, {}", std::thread::available_parallelism().map_or(0, |n| n.get()), cpu_model());
     println!("\n| step | wall s | Msamples/s | x real time | ratio to reading once |");
     println!("|---|---|---|---|---|");
     let row = |name: &str, seconds: f64| {
-        println!("| {name} | {seconds:.2} | {:.1} | {:.1} | {:.2} |", samples / seconds / 1e6, duration / seconds, seconds / read);
+        println!(
+            "| {name} | {seconds:.2} | {:.1} | {:.1} | {:.2} |",
+            samples / seconds / 1e6,
+            duration / seconds,
+            seconds / read
+        );
     };
     row("read file once (reference)", read);
     for stage in &record.stages {
-        row(&format!("stage {} (peak RSS {:.0} MiB)", stage.name, stage.peak_rss_bytes as f64 / (1 << 20) as f64), stage.wall_seconds);
+        row(
+            &format!("stage {} (peak RSS {:.0} MiB)", stage.name, stage.peak_rss_bytes as f64 / (1 << 20) as f64),
+            stage.wall_seconds,
+        );
     }
     row("whole run (hashing, planning, all stages)", total);
     Ok(())
@@ -119,6 +130,10 @@ fn main() -> anyhow::Result<()> {
 fn cpu_model() -> String {
     std::fs::read_to_string("/proc/cpuinfo")
         .ok()
-        .and_then(|text| text.lines().find(|l| l.starts_with("model name")).map(|l| l.split(':').nth(1).unwrap_or("").trim().to_string()))
+        .and_then(|text| {
+            text.lines()
+                .find(|l| l.starts_with("model name"))
+                .map(|l| l.split(':').nth(1).unwrap_or("").trim().to_string())
+        })
         .unwrap_or_else(|| "unknown CPU".into())
 }
