@@ -586,3 +586,83 @@ mod tests {
         assert_eq!(recording.spread_windows(4, 200_000, 0).len(), 1);
     }
 }
+
+#[cfg(test)]
+mod layout_tests {
+    use super::*;
+
+    /// Write `values` (already in stored order) as `dtype` with a description.
+    fn write(dir: &Path, dtype: &str, layout: &str, gain: f64, offset: f64, bytes: Vec<u8>) -> Recording {
+        std::fs::write(dir.join("d.bin"), bytes).unwrap();
+        std::fs::write(dir.join("e.csv"), "channel,x_um,y_um,label,z_um\n1,10,0,b,0\n0,0,0,a,0\n2,20,0,c,0\n").unwrap();
+        let text = format!(
+            "data = \"d.bin\"\nsample_rate_hz = 1000.0\nchannels = 3\ndtype = \"{dtype}\"\nlayout = \"{layout}\"\n\
+             microvolts_per_unit = {gain:?}\noffset = {offset:?}\nelectrodes = \"e.csv\"\n"
+        );
+        std::fs::write(dir.join("r.toml"), text).unwrap();
+        Recording::open(&dir.join("r.toml")).unwrap()
+    }
+
+    fn frames(recording: &Recording, start: u64, end: u64) -> Vec<f32> {
+        let mut out = vec![123.0; 2];
+        recording.read_frames(start, end, &mut out).unwrap();
+        out
+    }
+
+    // Stored frames t0 = (1, 2, 3), t1 = (4, 5, 6) in every dtype and layout.
+    #[test]
+    fn every_dtype_and_layout_reads_the_same_microvolts() {
+        let time_major = [1.0f64, 2.0, 3.0, 4.0, 5.0, 6.0];
+        let channel_major = [1.0f64, 4.0, 2.0, 5.0, 3.0, 6.0];
+        let expected: Vec<f32> = time_major.iter().map(|v| (v * 0.5) as f32).collect();
+        for (layout, order) in [("time-major", time_major), ("channel-major", channel_major)] {
+            let encodings: Vec<(&str, Vec<u8>)> = vec![
+                ("i16", order.iter().flat_map(|v| (*v as i16).to_le_bytes()).collect()),
+                ("i32", order.iter().flat_map(|v| (*v as i32).to_le_bytes()).collect()),
+                ("f32", order.iter().flat_map(|v| (*v as f32).to_le_bytes()).collect()),
+                ("f64", order.iter().flat_map(|v| v.to_le_bytes()).collect()),
+            ];
+            for (dtype, bytes) in encodings {
+                let dir = tempfile::tempdir().unwrap();
+                let recording = write(dir.path(), dtype, layout, 0.5, 0.0, bytes);
+                assert_eq!(recording.n_frames, 2);
+                assert_eq!(frames(&recording, 0, 2), expected, "{dtype} {layout}");
+                assert_eq!(frames(&recording, 1, 2), expected[3..].to_vec(), "{dtype} {layout}");
+            }
+        }
+    }
+
+    #[test]
+    fn unsigned_data_has_its_offset_removed() {
+        let dir = tempfile::tempdir().unwrap();
+        let stored = [32768u16, 32769, 32767, 0, 65535, 32768];
+        let recording = write(
+            dir.path(),
+            "u16",
+            "time-major",
+            0.195,
+            32768.0,
+            stored.iter().flat_map(|v| v.to_le_bytes()).collect(),
+        );
+        let expected: Vec<f32> = stored.iter().map(|&v| ((v as f64 - 32768.0) * 0.195) as f32).collect();
+        assert_eq!(frames(&recording, 0, 2), expected);
+    }
+
+    #[test]
+    fn electrode_rows_may_come_in_any_order_with_extra_columns() {
+        let dir = tempfile::tempdir().unwrap();
+        let recording = write(dir.path(), "i16", "time-major", 1.0, 0.0, vec![0; 12]);
+        let xs: Vec<f64> = recording.electrodes.iter().map(|e| e.x_um).collect();
+        assert_eq!(xs, vec![0.0, 10.0, 20.0]);
+        assert_eq!(recording.electrodes[1].label.as_deref(), Some("b"));
+    }
+
+    #[test]
+    fn reading_past_the_end_is_an_error_not_a_panic() {
+        let dir = tempfile::tempdir().unwrap();
+        let recording = write(dir.path(), "i16", "time-major", 1.0, 0.0, vec![0; 12]);
+        let mut out = Vec::new();
+        let message = recording.read_frames(1, 3, &mut out).unwrap_err().to_string();
+        assert!(message.contains("d.bin") && message.contains("has 2 frames"), "{message}");
+    }
+}
