@@ -10,6 +10,8 @@
 //!   stage prints on stderr.
 //! - [`table`]: Parquet writers that write under a temporary name and rename
 //!   only after the footer is written.
+//! - [`events`]: the events table read as a stream, and a walk over the
+//!   recording that hands each chunk's events to a callback.
 //! - [`noise`]: the MAD noise estimate shared by the QC and detect stages.
 //! - [`hash`]: content hashes for cache keys and manifests.
 //! - [`mod@stage_main`]: the command-line glue every Rust stage shares.
@@ -19,6 +21,7 @@
 //! their sign (a negative trough stays negative); positions are micrometres.
 
 pub mod error;
+pub mod events;
 pub mod hash;
 pub mod noise;
 pub mod recording;

@@ -77,3 +77,10 @@ impl From<crate::error::RecordingError> for StageFailure {
         StageFailure::failed(error)
     }
 }
+
+impl From<crate::error::ContractError> for StageFailure {
+    /// An error while reading an earlier stage's output or writing our own.
+    fn from(error: crate::error::ContractError) -> Self {
+        StageFailure::failed(error)
+    }
+}

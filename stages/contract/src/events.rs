@@ -1,0 +1,156 @@
+//! Streaming access to the detect stage's `events.parquet`, and a walk over
+//! the recording that hands each chunk's events to a callback together with
+//! the frames around them. Used by every stage that cuts snippets around
+//! spikes, so memory stays bounded by one chunk and one batch of events.
+
+use crate::error::ContractError;
+use crate::recording::Recording;
+use crate::table::column;
+use arrow_array::{Float32Array, Int32Array, Int64Array};
+use parquet::arrow::arrow_reader::{ParquetRecordBatchReader, ParquetRecordBatchReaderBuilder};
+use std::path::{Path, PathBuf};
+
+/// One detected event, as `events.parquet` stores it.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct EventRecord {
+    /// Row number in the events table (0-based).
+    pub index: u64,
+    pub sample: u64,
+    pub channel: usize,
+    pub amplitude_uv: f32,
+}
+
+/// Events read batch by batch, in table order (ascending sample).
+pub struct EventStream {
+    path: PathBuf,
+    reader: ParquetRecordBatchReader,
+    buffer: std::vec::IntoIter<EventRecord>,
+    next_index: u64,
+    /// Rows in the table.
+    pub n_events: u64,
+}
+
+impl EventStream {
+    /// Open an events table.
+    ///
+    /// # Errors
+    /// Missing file or not Parquet, with the path.
+    pub fn open(path: &Path) -> Result<Self, ContractError> {
+        let file = std::fs::File::open(path).map_err(|e| ContractError::io(path, e))?;
+        let parquet = |source| ContractError::Parquet { path: path.to_path_buf(), source };
+        let builder = ParquetRecordBatchReaderBuilder::try_new(file).map_err(parquet)?;
+        let n_events = builder.metadata().file_metadata().num_rows().max(0) as u64;
+        let reader = builder.with_batch_size(65536).build().map_err(parquet)?;
+        Ok(EventStream { path: path.to_path_buf(), reader, buffer: Vec::new().into_iter(), next_index: 0, n_events })
+    }
+
+    /// The next event.
+    ///
+    /// # Errors
+    /// A batch cannot be decoded or lacks the columns.
+    pub fn next_event(&mut self) -> Result<Option<EventRecord>, ContractError> {
+        loop {
+            if let Some(event) = self.buffer.next() {
+                return Ok(Some(event));
+            }
+            let Some(batch) = self.reader.next() else { return Ok(None) };
+            let batch = batch.map_err(|source| ContractError::Arrow { path: self.path.clone(), source })?;
+            let samples: &Int64Array = column(&self.path, &batch, "sample")?;
+            let channels: &Int32Array = column(&self.path, &batch, "channel")?;
+            let amplitudes: &Float32Array = column(&self.path, &batch, "amplitude_uv")?;
+            let first = self.next_index;
+            let events: Vec<EventRecord> = (0..batch.num_rows())
+                .map(|i| EventRecord {
+                    index: first + i as u64,
+                    sample: samples.value(i).max(0) as u64,
+                    channel: channels.value(i).max(0) as usize,
+                    amplitude_uv: amplitudes.value(i),
+                })
+                .collect();
+            self.next_index += events.len() as u64;
+            self.buffer = events.into_iter();
+        }
+    }
+}
+
+/// Frames of one chunk with the events whose sample lies in its core.
+pub struct EventWindow<'a> {
+    /// Time-major µV frames starting at `first_frame`.
+    pub frames: &'a [f32],
+    pub first_frame: u64,
+    pub n_frames: usize,
+    pub events: &'a [EventRecord],
+}
+
+impl EventWindow<'_> {
+    /// Value at absolute `frame` on `channel`, clamped to the frames held.
+    #[inline]
+    pub fn value(&self, frame: i64, channel: usize, n_channels: usize) -> f32 {
+        let local = (frame - self.first_frame as i64).clamp(0, self.n_frames as i64 - 1) as usize;
+        self.frames[local * n_channels + channel]
+    }
+}
+
+/// Walk the recording chunk by chunk (cores of `chunk_frames`, reads
+/// widened by `margin_frames`), calling `visit` for every chunk that holds
+/// at least one event (events must be in ascending sample order).
+/// Chunks without events are not read.
+///
+/// # Errors
+/// Reading fails, an event lies outside the recording, or `visit` fails.
+pub fn for_each_event_window<E: From<ContractError>>(
+    recording: &Recording,
+    events: &mut EventStream,
+    chunk_frames: usize,
+    margin_frames: usize,
+    mut visit: impl FnMut(&EventWindow) -> Result<(), E>,
+) -> Result<(), E> {
+    let mut frames = Vec::new();
+    let mut pending: Option<EventRecord> = events.next_event()?;
+    let mut batch = Vec::new();
+    for chunk in recording.chunks(chunk_frames, margin_frames) {
+        batch.clear();
+        while let Some(event) = pending {
+            if event.sample >= chunk.core_end {
+                break;
+            }
+            if event.channel >= recording.n_channels {
+                return Err(ContractError::Format {
+                    path: events.path.clone(),
+                    message: format!("row {}: channel {} does not exist in the recording", event.index, event.channel),
+                }
+                .into());
+            }
+            if event.sample < chunk.core_start {
+                return Err(ContractError::Format {
+                    path: events.path.clone(),
+                    message: format!("row {}: events are not in ascending sample order", event.index),
+                }
+                .into());
+            }
+            batch.push(event);
+            pending = events.next_event()?;
+        }
+        if batch.is_empty() {
+            continue;
+        }
+        recording.read_frames(chunk.read_start, chunk.read_end, &mut frames).map_err(ContractError::from)?;
+        visit(&EventWindow {
+            frames: &frames,
+            first_frame: chunk.read_start,
+            n_frames: chunk.read_frames(),
+            events: &batch,
+        })?;
+    }
+    if let Some(event) = pending {
+        return Err(ContractError::Format {
+            path: events.path.clone(),
+            message: format!(
+                "row {}: sample {} is past the recording's end ({} frames)",
+                event.index, event.sample, recording.n_frames
+            ),
+        }
+        .into());
+    }
+    Ok(())
+}

@@ -1,0 +1,153 @@
+//! Snippet kernels: electrode neighbourhoods, sub-sample alignment of the
+//! extremum, snippet cutting by cubic interpolation, and the centre of mass
+//! position estimate.
+
+use spikeyard_contract::events::EventWindow;
+use spikeyard_contract::Electrode;
+
+/// For every channel: itself, then up to `max_channels − 1` other channels
+/// within `radius_um`, nearest first (ties by channel number), with distances.
+pub fn neighbourhoods(electrodes: &[Electrode], radius_um: f64, max_channels: usize) -> Vec<Vec<(usize, f64)>> {
+    electrodes
+        .iter()
+        .map(|a| {
+            let mut near: Vec<(usize, f64)> = electrodes
+                .iter()
+                .map(|b| (b.channel, (a.x_um - b.x_um).hypot(a.y_um - b.y_um)))
+                .filter(|(c, d)| *c == a.channel || *d <= radius_um)
+                .collect();
+            near.sort_by(|x, y| x.1.total_cmp(&y.1).then(x.0.cmp(&y.0)));
+            near.truncate(max_channels);
+            near
+        })
+        .collect()
+}
+
+/// Offset (−0.5..0.5 frames) of the extremum of the parabola through three
+/// samples around a sampled extremum.
+pub fn subsample_offset(before: f64, at: f64, after: f64) -> f64 {
+    let curvature = before - 2.0 * at + after;
+    if curvature.abs() < f64::EPSILON * (before.abs() + at.abs() + after.abs()).max(1.0) {
+        return 0.0;
+    }
+    (0.5 * (before - after) / curvature).clamp(-0.5, 0.5)
+}
+
+/// Cut the snippet of `channel` centred at the fractional frame `centre`:
+/// `out[j]` is the signal at `centre − before + j`, by Catmull–Rom cubic
+/// interpolation (exact at whole frames).
+pub fn cut_snippet(
+    window: &EventWindow,
+    n_channels: usize,
+    channel: usize,
+    centre: f64,
+    before: usize,
+    out: &mut [f64],
+) {
+    let start = centre - before as f64;
+    let base = start.floor();
+    let t = start - base;
+    let base = base as i64;
+    let value = |frame: i64| window.value(frame, channel, n_channels) as f64;
+    for (j, o) in out.iter_mut().enumerate() {
+        let k = base + j as i64;
+        if t == 0.0 {
+            *o = value(k);
+            continue;
+        }
+        let (p0, p1, p2, p3) = (value(k - 1), value(k), value(k + 1), value(k + 2));
+        *o = p1 + 0.5 * t * (p2 - p0 + t * (2.0 * p0 - 5.0 * p1 + 4.0 * p2 - p3 + t * (3.0 * (p1 - p2) + p3 - p0)));
+    }
+}
+
+/// Trough-depth-weighted centre of mass of the electrodes, µm; the first
+/// electrode's position when no snippet goes below zero.
+pub fn centre_of_mass(electrodes: &[Electrode], channels: &[(usize, f64)], troughs_uv: &[f64]) -> (f64, f64) {
+    let (mut x, mut y, mut total) = (0.0, 0.0, 0.0);
+    for (&(channel, _), &trough) in channels.iter().zip(troughs_uv) {
+        let weight = (-trough).max(0.0);
+        x += weight * electrodes[channel].x_um;
+        y += weight * electrodes[channel].y_um;
+        total += weight;
+    }
+    if total > 0.0 {
+        (x / total, y / total)
+    } else {
+        let e = &electrodes[channels[0].0];
+        (e.x_um, e.y_um)
+    }
+}
+
+/// Whether event `index` is in the seeded fitting subset of probability `p`.
+pub fn chosen_for_fit(seed: u64, index: u64, probability: f64) -> bool {
+    let mut z = seed ^ index.wrapping_mul(0x9E37_79B9_7F4A_7C15);
+    z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
+    z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
+    z ^= z >> 31;
+    ((z >> 11) as f64 / (1u64 << 53) as f64) < probability
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn parabola_finds_the_true_extremum_of_a_sampled_parabola() {
+        // y = (t − 0.3)², sampled at −1, 0, 1: the minimum is at +0.3.
+        let f = |t: f64| (t - 0.3) * (t - 0.3);
+        assert!((subsample_offset(f(-1.0), f(0.0), f(1.0)) - 0.3).abs() < 1e-12);
+        assert_eq!(subsample_offset(1.0, 1.0, 1.0), 0.0);
+    }
+
+    #[test]
+    fn cubic_interpolation_is_exact_at_whole_frames_and_on_quadratics() {
+        let n_channels = 2;
+        let frames: Vec<f32> = (0..40)
+            .flat_map(|k| {
+                let t = k as f32;
+                [t * t * 0.01, 5.0]
+            })
+            .collect();
+        let window = EventWindow { frames: &frames, first_frame: 100, n_frames: 40, events: &[] };
+        let mut out = [0.0; 5];
+        cut_snippet(&window, n_channels, 0, 120.0, 2, &mut out);
+        assert_eq!(out.to_vec(), (18..23).map(|k| frames[k * n_channels] as f64).collect::<Vec<_>>());
+        // A quadratic is reproduced exactly by Catmull–Rom between samples.
+        cut_snippet(&window, n_channels, 0, 120.25, 2, &mut out);
+        for (j, v) in out.iter().enumerate() {
+            let t = 18.25 + j as f64;
+            assert!((v - t * t * 0.01).abs() < 1e-4, "{v} vs {}", t * t * 0.01);
+        }
+    }
+
+    #[test]
+    fn neighbourhood_lists_itself_first_then_nearest() {
+        let electrodes: Vec<Electrode> = [(0.0, 0.0), (10.0, 0.0), (0.0, 20.0), (500.0, 0.0)]
+            .iter()
+            .enumerate()
+            .map(|(c, &(x, y))| Electrode { channel: c, x_um: x, y_um: y, label: None, group: None })
+            .collect();
+        let n = neighbourhoods(&electrodes, 100.0, 3);
+        assert_eq!(n[0].iter().map(|x| x.0).collect::<Vec<_>>(), vec![0, 1, 2]);
+        assert_eq!(n[3].iter().map(|x| x.0).collect::<Vec<_>>(), vec![3]);
+    }
+
+    #[test]
+    fn centre_of_mass_weights_by_trough_depth() {
+        let electrodes: Vec<Electrode> = [(0.0, 0.0), (30.0, 0.0)]
+            .iter()
+            .enumerate()
+            .map(|(c, &(x, y))| Electrode { channel: c, x_um: x, y_um: y, label: None, group: None })
+            .collect();
+        let (x, y) = centre_of_mass(&electrodes, &[(0, 0.0), (1, 30.0)], &[-30.0, -10.0]);
+        assert!((x - 7.5).abs() < 1e-12 && y == 0.0);
+    }
+
+    #[test]
+    fn fit_subset_has_the_requested_fraction_and_depends_on_the_seed() {
+        let chosen = (0..100_000u64).filter(|&i| chosen_for_fit(7, i, 0.2)).count();
+        assert!((chosen as f64 - 20_000.0).abs() < 600.0, "{chosen}");
+        let same = (0..1000u64).filter(|&i| chosen_for_fit(7, i, 0.5) == chosen_for_fit(8, i, 0.5)).count();
+        assert!(same < 600);
+    }
+}

@@ -1,0 +1,276 @@
+//! The features stage: a multi-electrode snippet around every detected
+//! event, aligned on its extremum with sub-sample precision, reduced to a
+//! few principal components per electrode, with a position estimate.
+//!
+//! Data flow of [`run`]:
+//! 1. open the filtered recording (`filtered.toml`, else the raw one) and
+//!    the events (`events.parquet`), check parameters ([`params`]);
+//! 2. neighbourhood of every electrode ([`kernel::neighbourhoods`]);
+//! 3. fitting pass: snippets of a seeded random subset of events, on every
+//!    electrode of their neighbourhood, give one PCA basis for
+//!    single-electrode waveforms ([`pca`]);
+//! 4. projection pass, chunk by chunk: every event's snippets are projected
+//!    (n_components per electrode, nearest electrode first) and its
+//!    position estimated; rows stream to `features.parquet`;
+//! 5. `pca_components.parquet` and `neighbourhoods.parquet` record the basis
+//!    and the electrode order so the features can be interpreted.
+
+pub mod kernel;
+pub mod params;
+pub mod pca;
+
+use arrow_array::{ArrayRef, FixedSizeListArray, Float32Array, Float64Array, Int32Array, Int64Array, RecordBatch};
+use arrow_schema::{DataType, Field, Schema, SchemaRef};
+use params::{FeaturesParams, ValidFeaturesParams};
+use pca::Pca;
+use rayon::prelude::*;
+use spikeyard_contract::events::{for_each_event_window, EventRecord, EventStream, EventWindow};
+use spikeyard_contract::table::{write_table, TableWriter, META_WRITER};
+use spikeyard_contract::{ContractError, ProgressReporter, Recording, StageFailure, StageReport, StageRequest};
+use std::sync::Arc;
+
+pub const EXECUTABLE: &str = "spikeyard-features";
+pub const VERSION: &str = env!("CARGO_PKG_VERSION");
+
+pub const FEATURES_TABLE: &str = "features.parquet";
+pub const PCA_TABLE: &str = "pca_components.parquet";
+pub const NEIGHBOURHOODS_TABLE: &str = "neighbourhoods.parquet";
+
+/// Schema of `features.parquet` for `width` features per event.
+pub fn features_schema(width: usize) -> SchemaRef {
+    Arc::new(Schema::new(vec![
+        Field::new("event", DataType::Int64, false),
+        Field::new("sample", DataType::Int64, false),
+        Field::new("time_s", DataType::Float64, false),
+        Field::new("channel", DataType::Int32, false),
+        Field::new("amplitude_uv", DataType::Float32, false),
+        Field::new("subsample_offset", DataType::Float32, false),
+        Field::new("x_um", DataType::Float32, false),
+        Field::new("y_um", DataType::Float32, false),
+        Field::new(
+            "features",
+            DataType::FixedSizeList(Arc::new(Field::new("item", DataType::Float32, false)), width as i32),
+            false,
+        ),
+    ]))
+}
+
+/// Everything needed to turn an event into its features.
+pub struct Extractor<'a> {
+    pub recording: &'a Recording,
+    pub params: &'a ValidFeaturesParams,
+    pub neighbourhoods: Vec<Vec<(usize, f64)>>,
+}
+
+/// One event's features.
+#[derive(Debug, Clone, PartialEq)]
+pub struct EventFeatures {
+    pub event: EventRecord,
+    pub subsample_offset: f32,
+    pub x_um: f32,
+    pub y_um: f32,
+    pub features: Vec<f32>,
+}
+
+impl Extractor<'_> {
+    /// The fractional frame of the event's extremum.
+    fn centre(&self, window: &EventWindow, event: &EventRecord) -> f64 {
+        let n = self.recording.n_channels;
+        let s = event.sample as i64;
+        let v = |k: i64| window.value(k, event.channel, n) as f64;
+        event.sample as f64 + kernel::subsample_offset(v(s - 1), v(s), v(s + 1))
+    }
+
+    /// Aligned snippets of an event on every electrode of its neighbourhood.
+    pub fn snippets(&self, window: &EventWindow, event: &EventRecord) -> (f64, Vec<Vec<f64>>) {
+        let centre = self.centre(window, event);
+        let rows = self.neighbourhoods[event.channel]
+            .iter()
+            .map(|&(channel, _)| {
+                let mut row = vec![0.0; self.params.snippet_frames()];
+                kernel::cut_snippet(
+                    window,
+                    self.recording.n_channels,
+                    channel,
+                    centre,
+                    self.params.before_frames,
+                    &mut row,
+                );
+                row
+            })
+            .collect();
+        (centre, rows)
+    }
+
+    /// Features of one event with a fitted basis.
+    pub fn features(&self, window: &EventWindow, event: &EventRecord, pca: &Pca) -> EventFeatures {
+        let k = self.params.n_components;
+        let (centre, rows) = self.snippets(window, event);
+        let mut features = vec![0.0f32; k * self.params.max_channels];
+        for (rank, row) in rows.iter().enumerate() {
+            pca.project(row, k, &mut features[rank * k..(rank + 1) * k]);
+        }
+        let troughs: Vec<f64> = rows.iter().map(|r| r.iter().copied().fold(0.0, f64::min)).collect();
+        let (x, y) = kernel::centre_of_mass(&self.recording.electrodes, &self.neighbourhoods[event.channel], &troughs);
+        EventFeatures {
+            event: *event,
+            subsample_offset: (centre - event.sample as f64) as f32,
+            x_um: x as f32,
+            y_um: y as f32,
+            features,
+        }
+    }
+}
+
+fn features_batch(rows: &[EventFeatures], width: usize, sample_rate_hz: f64) -> RecordBatch {
+    let values = Float32Array::from_iter_values(rows.iter().flat_map(|r| r.features.iter().copied()));
+    let list = FixedSizeListArray::try_new(
+        Arc::new(Field::new("item", DataType::Float32, false)),
+        width as i32,
+        Arc::new(values),
+        None,
+    )
+    .expect("feature rows all have the same width");
+    let columns: Vec<ArrayRef> = vec![
+        Arc::new(Int64Array::from_iter_values(rows.iter().map(|r| r.event.index as i64))),
+        Arc::new(Int64Array::from_iter_values(rows.iter().map(|r| r.event.sample as i64))),
+        Arc::new(Float64Array::from_iter_values(rows.iter().map(|r| r.event.sample as f64 / sample_rate_hz))),
+        Arc::new(Int32Array::from_iter_values(rows.iter().map(|r| r.event.channel as i32))),
+        Arc::new(Float32Array::from_iter_values(rows.iter().map(|r| r.event.amplitude_uv))),
+        Arc::new(Float32Array::from_iter_values(rows.iter().map(|r| r.subsample_offset))),
+        Arc::new(Float32Array::from_iter_values(rows.iter().map(|r| r.x_um))),
+        Arc::new(Float32Array::from_iter_values(rows.iter().map(|r| r.y_um))),
+        Arc::new(list),
+    ];
+    RecordBatch::try_new(features_schema(width), columns).expect("feature columns match their schema")
+}
+
+fn pca_batch(pca: &Pca, before_frames: usize) -> RecordBatch {
+    let dim = pca.mean.len();
+    let rows: Vec<(i32, i32, f64, f64)> = std::iter::once((-1, &pca.mean, f64::NAN))
+        .chain(pca.components.iter().zip(&pca.explained_variance).enumerate().map(|(i, (c, v))| (i as i32, c, *v)))
+        .flat_map(|(component, values, variance)| {
+            values.iter().enumerate().map(move |(j, v)| (component, j as i32 - before_frames as i32, *v, variance))
+        })
+        .collect();
+    debug_assert_eq!(rows.len(), dim * (dim + 1));
+    RecordBatch::try_new(
+        Arc::new(Schema::new(vec![
+            Field::new("component", DataType::Int32, false),
+            Field::new("lag_samples", DataType::Int32, false),
+            Field::new("value", DataType::Float64, false),
+            Field::new("explained_variance", DataType::Float64, false),
+        ])),
+        vec![
+            Arc::new(Int32Array::from_iter_values(rows.iter().map(|r| r.0))),
+            Arc::new(Int32Array::from_iter_values(rows.iter().map(|r| r.1))),
+            Arc::new(Float64Array::from_iter_values(rows.iter().map(|r| r.2))),
+            Arc::new(Float64Array::from_iter_values(rows.iter().map(|r| r.3))),
+        ],
+    )
+    .expect("PCA columns match their schema")
+}
+
+fn neighbourhoods_batch(neighbourhoods: &[Vec<(usize, f64)>]) -> RecordBatch {
+    let rows: Vec<(i32, i32, i32, f64)> = neighbourhoods
+        .iter()
+        .enumerate()
+        .flat_map(|(c, list)| list.iter().enumerate().map(move |(rank, &(n, d))| (c as i32, rank as i32, n as i32, d)))
+        .collect();
+    RecordBatch::try_new(
+        Arc::new(Schema::new(vec![
+            Field::new("channel", DataType::Int32, false),
+            Field::new("rank", DataType::Int32, false),
+            Field::new("neighbour", DataType::Int32, false),
+            Field::new("distance_um", DataType::Float64, false),
+        ])),
+        vec![
+            Arc::new(Int32Array::from_iter_values(rows.iter().map(|r| r.0))),
+            Arc::new(Int32Array::from_iter_values(rows.iter().map(|r| r.1))),
+            Arc::new(Int32Array::from_iter_values(rows.iter().map(|r| r.2))),
+            Arc::new(Float64Array::from_iter_values(rows.iter().map(|r| r.3))),
+        ],
+    )
+    .expect("neighbourhood columns match their schema")
+}
+
+/// Run the stage on a request.
+///
+/// # Errors
+/// Bad input ([`StageFailure::bad_input`]) or failures while working.
+pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
+    let mut report = StageReport::default();
+    let input = match request.artifact("filtered.toml") {
+        Some(path) => path.to_path_buf(),
+        None => {
+            report.warn("no earlier stage wrote filtered.toml; cutting snippets from the raw recording");
+            request.recording.clone()
+        }
+    };
+    let recording = Recording::open(&input).map_err(StageFailure::bad_input)?;
+    let events_path = request.require_artifact("events.parquet").map_err(StageFailure::bad_input)?.to_path_buf();
+    let params: FeaturesParams = request.params().map_err(StageFailure::bad_input)?;
+    let valid = params.check(recording.sample_rate_hz).map_err(|message| {
+        StageFailure::bad_input(ContractError::Param {
+            path: request.path.clone(),
+            key: format!("{}.params", request.stage),
+            message,
+        })
+    })?;
+    let extractor = Extractor {
+        recording: &recording,
+        params: &valid,
+        neighbourhoods: kernel::neighbourhoods(&recording.electrodes, valid.neighbour_radius_um, valid.max_channels),
+    };
+    let margin = valid.before_frames.max(valid.after_frames) + 4;
+    let metadata = [
+        (META_WRITER, format!("{EXECUTABLE} {VERSION}")),
+        ("spikeyard.params", serde_json::to_string(&params).unwrap_or_default()),
+    ];
+
+    // Fitting pass on a seeded subset.
+    let mut events = EventStream::open(&events_path).map_err(StageFailure::bad_input)?;
+    let n_events = events.n_events;
+    let probability = (valid.fit_events as f64 / n_events.max(1) as f64).min(1.0);
+    let mut fit_rows: Vec<Vec<f64>> = Vec::new();
+    for_each_event_window(&recording, &mut events, valid.chunk_frames, margin, |window| {
+        for event in window.events.iter().filter(|e| kernel::chosen_for_fit(request.seed, e.index, probability)) {
+            fit_rows.extend(extractor.snippets(window, event).1);
+        }
+        Ok::<(), StageFailure>(())
+    })?;
+    let width = valid.n_components * valid.max_channels;
+    let pca = match Pca::fit(&fit_rows, valid.snippet_frames()) {
+        Some(pca) => pca,
+        None => {
+            report.warn(format!("{n_events} events: too few to fit a PCA; the features table is empty"));
+            let mut zero = Pca::fit(
+                &[vec![0.0; valid.snippet_frames()], vec![0.0; valid.snippet_frames()]],
+                valid.snippet_frames(),
+            )
+            .expect("two rows fit");
+            zero.explained_variance.iter_mut().for_each(|v| *v = 0.0);
+            zero
+        }
+    };
+    write_table(&request.output(PCA_TABLE), &pca_batch(&pca, valid.before_frames), &metadata)?;
+    write_table(&request.output(NEIGHBOURHOODS_TABLE), &neighbourhoods_batch(&extractor.neighbourhoods), &metadata)?;
+
+    // Projection pass over every event.
+    let mut writer = TableWriter::create(&request.output(FEATURES_TABLE), features_schema(width), &metadata)?;
+    let mut progress = ProgressReporter::new(n_events, "events");
+    let mut events = EventStream::open(&events_path).map_err(StageFailure::bad_input)?;
+    for_each_event_window(&recording, &mut events, valid.chunk_frames, margin, |window| {
+        let rows: Vec<EventFeatures> = window.events.par_iter().map(|e| extractor.features(window, e, &pca)).collect();
+        writer.write(&features_batch(&rows, width, recording.sample_rate_hz))?;
+        progress.advance(rows.len() as u64);
+        Ok::<(), StageFailure>(())
+    })?;
+    writer.finish()?;
+    let ratio = pca.explained_variance_ratio();
+    let kept: f64 = ratio.iter().take(valid.n_components).filter(|r| r.is_finite()).sum();
+    report.summary.insert("events".into(), n_events.into());
+    report.summary.insert("fit_snippets".into(), fit_rows.len().into());
+    report.summary.insert("variance_explained_by_kept_components".into(), kept.into());
+    Ok(report)
+}
