@@ -73,6 +73,14 @@ impl EventStream {
     }
 }
 
+impl Iterator for EventStream {
+    type Item = Result<EventRecord, ContractError>;
+
+    fn next(&mut self) -> Option<Self::Item> {
+        self.next_event().transpose()
+    }
+}
+
 /// Frames of one chunk with the events whose sample lies in its core.
 pub struct EventWindow<'a> {
     /// Time-major µV frames starting at `first_frame`.
@@ -93,20 +101,23 @@ impl EventWindow<'_> {
 
 /// Walk the recording chunk by chunk (cores of `chunk_frames`, reads
 /// widened by `margin_frames`), calling `visit` for every chunk that holds
-/// at least one event (events must be in ascending sample order).
-/// Chunks without events are not read.
+/// at least one event (events must be in ascending sample order; `origin`
+/// names their source in errors). Chunks without events are not read.
 ///
 /// # Errors
-/// Reading fails, an event lies outside the recording, or `visit` fails.
+/// Reading fails, an event lies outside the recording or out of order, or
+/// `visit` fails.
 pub fn for_each_event_window<E: From<ContractError>>(
     recording: &Recording,
-    events: &mut EventStream,
+    events: impl IntoIterator<Item = Result<EventRecord, ContractError>>,
+    origin: &Path,
     chunk_frames: usize,
     margin_frames: usize,
     mut visit: impl FnMut(&EventWindow) -> Result<(), E>,
 ) -> Result<(), E> {
+    let mut events = events.into_iter();
     let mut frames = Vec::new();
-    let mut pending: Option<EventRecord> = events.next_event()?;
+    let mut pending: Option<EventRecord> = events.next().transpose()?;
     let mut batch = Vec::new();
     for chunk in recording.chunks(chunk_frames, margin_frames) {
         batch.clear();
@@ -116,20 +127,20 @@ pub fn for_each_event_window<E: From<ContractError>>(
             }
             if event.channel >= recording.n_channels {
                 return Err(ContractError::Format {
-                    path: events.path.clone(),
+                    path: origin.to_path_buf(),
                     message: format!("row {}: channel {} does not exist in the recording", event.index, event.channel),
                 }
                 .into());
             }
             if event.sample < chunk.core_start {
                 return Err(ContractError::Format {
-                    path: events.path.clone(),
+                    path: origin.to_path_buf(),
                     message: format!("row {}: events are not in ascending sample order", event.index),
                 }
                 .into());
             }
             batch.push(event);
-            pending = events.next_event()?;
+            pending = events.next().transpose()?;
         }
         if batch.is_empty() {
             continue;
@@ -144,7 +155,7 @@ pub fn for_each_event_window<E: From<ContractError>>(
     }
     if let Some(event) = pending {
         return Err(ContractError::Format {
-            path: events.path.clone(),
+            path: origin.to_path_buf(),
             message: format!(
                 "row {}: sample {} is past the recording's end ({} frames)",
                 event.index, event.sample, recording.n_frames

@@ -233,7 +233,7 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     let n_events = events.n_events;
     let probability = (valid.fit_events as f64 / n_events.max(1) as f64).min(1.0);
     let mut fit_rows: Vec<Vec<f64>> = Vec::new();
-    for_each_event_window(&recording, &mut events, valid.chunk_frames, margin, |window| {
+    for_each_event_window(&recording, &mut events, &events_path, valid.chunk_frames, margin, |window| {
         for event in window.events.iter().filter(|e| kernel::chosen_for_fit(request.seed, e.index, probability)) {
             fit_rows.extend(extractor.snippets(window, event).1);
         }
@@ -260,7 +260,7 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     let mut writer = TableWriter::create(&request.output(FEATURES_TABLE), features_schema(width), &metadata)?;
     let mut progress = ProgressReporter::new(n_events, "events");
     let mut events = EventStream::open(&events_path).map_err(StageFailure::bad_input)?;
-    for_each_event_window(&recording, &mut events, valid.chunk_frames, margin, |window| {
+    for_each_event_window(&recording, &mut events, &events_path, valid.chunk_frames, margin, |window| {
         let rows: Vec<EventFeatures> = window.events.par_iter().map(|e| extractor.features(window, e, &pca)).collect();
         writer.write(&features_batch(&rows, width, recording.sample_rate_hz))?;
         progress.advance(rows.len() as u64);

@@ -1,0 +1,261 @@
+//! Mixture models for one electrode neighbourhood: Gaussian mixtures
+//! (fitted with linfa-clustering's EM) or k-means, the number of units
+//! chosen by the Bayesian information criterion, and a plain predictor.
+//!
+//! BIC = −2·ln L + p·ln n (Schwarz 1978), p = k·d + k·d(d+1)/2 + (k−1) for a
+//! full-covariance mixture. For k-means the likelihood is that of the
+//! mixture of k spherical Gaussians at the centroids, weighted by cluster
+//! size, sharing one variance σ² = inertia/(n·d), with p = k·d + (k − 1) + 1.
+
+use linfa::prelude::*;
+use linfa_clustering::{GaussianMixtureModel, KMeans};
+use ndarray::Array2;
+use rand_xoshiro::rand_core::SeedableRng;
+use rand_xoshiro::Xoshiro256Plus;
+
+/// Regularisation added to covariance diagonals (as scikit-learn's default).
+pub const REG_COVARIANCE: f64 = 1e-6;
+
+/// One Gaussian component, ready to evaluate.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Component {
+    pub weight: f64,
+    pub mean: Vec<f64>,
+    /// Lower Cholesky factor of the covariance, row-major d×d.
+    pub cholesky: Vec<f64>,
+    pub log_det: f64,
+}
+
+/// A fitted mixture for one neighbourhood.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Mixture {
+    pub components: Vec<Component>,
+    pub bic: f64,
+}
+
+impl Mixture {
+    /// Log of weight × density of each component at `x`.
+    pub fn weighted_log_densities(&self, x: &[f64], out: &mut Vec<f64>) {
+        out.clear();
+        out.extend(self.components.iter().map(|c| c.weight.ln() + log_density(c, x)));
+    }
+
+    /// The component with the largest posterior probability.
+    pub fn predict(&self, x: &[f64]) -> usize {
+        let mut scores = Vec::with_capacity(self.components.len());
+        self.weighted_log_densities(x, &mut scores);
+        scores.iter().enumerate().fold((0, f64::NEG_INFINITY), |best, (i, &s)| if s > best.1 { (i, s) } else { best }).0
+    }
+
+    /// ln L of the data under the mixture.
+    pub fn log_likelihood(&self, rows: &[Vec<f64>]) -> f64 {
+        let mut scores = Vec::new();
+        rows.iter()
+            .map(|x| {
+                self.weighted_log_densities(x, &mut scores);
+                let top = scores.iter().copied().fold(f64::NEG_INFINITY, f64::max);
+                top + scores.iter().map(|s| (s - top).exp()).sum::<f64>().ln()
+            })
+            .sum()
+    }
+}
+
+fn log_density(component: &Component, x: &[f64]) -> f64 {
+    let d = component.mean.len();
+    // Solve L·z = x − μ; the Mahalanobis distance is |z|².
+    let mut z = vec![0.0; d];
+    for i in 0..d {
+        let mut sum = x[i] - component.mean[i];
+        for j in 0..i {
+            sum -= component.cholesky[i * d + j] * z[j];
+        }
+        z[i] = sum / component.cholesky[i * d + i];
+    }
+    let mahalanobis: f64 = z.iter().map(|v| v * v).sum();
+    -0.5 * (d as f64 * (2.0 * std::f64::consts::PI).ln() + component.log_det + mahalanobis)
+}
+
+/// Lower Cholesky factor of a symmetric positive-definite d×d matrix, and
+/// ln det; `None` when it is not positive definite.
+pub fn cholesky(matrix: &[f64], d: usize) -> Option<(Vec<f64>, f64)> {
+    let mut l = vec![0.0; d * d];
+    for i in 0..d {
+        for j in 0..=i {
+            let mut sum = matrix[i * d + j];
+            for k in 0..j {
+                sum -= l[i * d + k] * l[j * d + k];
+            }
+            if i == j {
+                if sum <= 0.0 || !sum.is_finite() {
+                    return None;
+                }
+                l[i * d + i] = sum.sqrt();
+            } else {
+                l[i * d + j] = sum / l[j * d + j];
+            }
+        }
+    }
+    let log_det = 2.0 * (0..d).map(|i| l[i * d + i].ln()).sum::<f64>();
+    Some((l, log_det))
+}
+
+fn component(weight: f64, mean: Vec<f64>, covariance: &[f64]) -> Option<Component> {
+    let d = mean.len();
+    let (cholesky, log_det) = cholesky(covariance, d)?;
+    Some(Component { weight, mean, cholesky, log_det })
+}
+
+fn to_array(rows: &[Vec<f64>], d: usize) -> Array2<f64> {
+    Array2::from_shape_fn((rows.len(), d), |(i, j)| rows[i][j])
+}
+
+fn full_parameters(k: usize, d: usize) -> f64 {
+    (k * d + k * d * (d + 1) / 2 + k - 1) as f64
+}
+
+/// One Gaussian, fitted in closed form (maximum likelihood covariance plus
+/// the regularisation).
+pub fn fit_single(rows: &[Vec<f64>], d: usize) -> Option<Mixture> {
+    let n = rows.len() as f64;
+    let mut mean = vec![0.0; d];
+    for row in rows {
+        for (m, v) in mean.iter_mut().zip(row) {
+            *m += v / n;
+        }
+    }
+    let mut covariance = vec![0.0; d * d];
+    for row in rows {
+        for i in 0..d {
+            for j in 0..d {
+                covariance[i * d + j] += (row[i] - mean[i]) * (row[j] - mean[j]) / n;
+            }
+        }
+    }
+    for i in 0..d {
+        covariance[i * d + i] += REG_COVARIANCE;
+    }
+    let mut mixture = Mixture { components: vec![component(1.0, mean, &covariance)?], bic: 0.0 };
+    mixture.bic = -2.0 * mixture.log_likelihood(rows) + full_parameters(1, d) * n.ln();
+    Some(mixture)
+}
+
+/// A k-component full-covariance Gaussian mixture by EM (k-means start,
+/// best of `runs`), or `None` when EM fails for this k.
+pub fn fit_gmm(rows: &[Vec<f64>], d: usize, k: usize, runs: u64, seed: u64) -> Option<Mixture> {
+    if k == 1 {
+        return fit_single(rows, d);
+    }
+    let data = DatasetBase::from(to_array(rows, d));
+    let model = GaussianMixtureModel::params_with_rng(k, Xoshiro256Plus::seed_from_u64(seed))
+        .n_runs(runs)
+        .tolerance(1e-3)
+        .reg_covariance(REG_COVARIANCE)
+        .max_n_iterations(200)
+        .fit(&data)
+        .ok()?;
+    let (weights, means, covariances) = (model.weights(), model.means(), model.covariances());
+    let components = (0..k)
+        .map(|c| {
+            let covariance: Vec<f64> = covariances.index_axis(ndarray::Axis(0), c).iter().copied().collect();
+            component(weights[c], means.row(c).to_vec(), &covariance)
+        })
+        .collect::<Option<Vec<_>>>()?;
+    let mut mixture = Mixture { components, bic: 0.0 };
+    mixture.bic = -2.0 * mixture.log_likelihood(rows) + full_parameters(k, d) * (rows.len() as f64).ln();
+    Some(mixture)
+}
+
+/// k-means (best of `runs`) as a mixture of spherical Gaussians with one
+/// shared variance, with its BIC (see the module docs).
+pub fn fit_kmeans(rows: &[Vec<f64>], d: usize, k: usize, runs: u64, seed: u64) -> Option<Mixture> {
+    let data = DatasetBase::from(to_array(rows, d));
+    let model =
+        KMeans::params_with_rng(k, Xoshiro256Plus::seed_from_u64(seed)).n_runs(runs as usize).fit(&data).ok()?;
+    let n = rows.len() as f64;
+    // linfa reports the inertia divided by the number of samples.
+    let inertia = model.inertia() * n;
+    let variance = (inertia / (n * d as f64)).max(REG_COVARIANCE);
+    let labels = model.predict(&data);
+    let mut counts = vec![0usize; k];
+    for &label in labels.iter() {
+        counts[label] += 1;
+    }
+    let mut covariance = vec![0.0; d * d];
+    for i in 0..d {
+        covariance[i * d + i] = variance;
+    }
+    let components = (0..k)
+        .map(|c| {
+            component((counts[c] as f64 / n).max(f64::MIN_POSITIVE), model.centroids().row(c).to_vec(), &covariance)
+        })
+        .collect::<Option<Vec<_>>>()?;
+    let mut mixture = Mixture { components, bic: 0.0 };
+    mixture.bic = -2.0 * mixture.log_likelihood(rows) + (k * d + k) as f64 * n.ln();
+    Some(mixture)
+}
+
+/// Which model family clusters a neighbourhood.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum Method {
+    Gmm,
+    Kmeans,
+}
+
+/// Fit k = 1..=max_k and keep the lowest BIC (ties to the smaller k).
+/// Each k gets at least `min_points_per_unit` points per component.
+pub fn select_by_bic(
+    rows: &[Vec<f64>],
+    d: usize,
+    method: Method,
+    max_k: usize,
+    min_points_per_unit: usize,
+    runs: u64,
+    seed: u64,
+) -> Option<Mixture> {
+    let largest = max_k.min(rows.len() / min_points_per_unit.max(1)).max(1);
+    (1..=largest)
+        .filter_map(|k| match method {
+            Method::Gmm => fit_gmm(rows, d, k, runs, seed.wrapping_add(k as u64)),
+            Method::Kmeans => fit_kmeans(rows, d, k, runs, seed.wrapping_add(k as u64)),
+        })
+        .fold(None, |best: Option<Mixture>, m| match best {
+            Some(b) if b.bic <= m.bic => Some(b),
+            _ => Some(m),
+        })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn cholesky_of_a_known_matrix() {
+        // [[4,2],[2,3]] = L·Lᵀ with L = [[2,0],[1,√2]]; det = 8.
+        let (l, log_det) = cholesky(&[4.0, 2.0, 2.0, 3.0], 2).unwrap();
+        assert!((l[0] - 2.0).abs() < 1e-15 && (l[2] - 1.0).abs() < 1e-15 && (l[3] - 2f64.sqrt()).abs() < 1e-15);
+        assert!((log_det - 8f64.ln()).abs() < 1e-14);
+        assert!(cholesky(&[1.0, 2.0, 2.0, 1.0], 2).is_none());
+    }
+
+    #[test]
+    fn well_separated_blobs_get_their_own_units() {
+        let mut rows = Vec::new();
+        let mut rng = spikeyard_contract::testing::TestRng::new(5);
+        let mut noise = || 0.5 * rng.normal();
+        for centre in [[0.0, 0.0], [10.0, 0.0], [0.0, 10.0]] {
+            for _ in 0..200 {
+                rows.push(vec![centre[0] + noise(), centre[1] + noise()]);
+            }
+        }
+        for method in [Method::Gmm, Method::Kmeans] {
+            let model = select_by_bic(&rows, 2, method, 6, 10, 3, 1).unwrap();
+            assert_eq!(model.components.len(), 3, "{method:?}");
+            let labels: Vec<usize> = rows.iter().map(|r| model.predict(r)).collect();
+            for blob in 0..3 {
+                let first = labels[blob * 200];
+                assert!(labels[blob * 200..(blob + 1) * 200].iter().all(|&l| l == first));
+            }
+        }
+    }
+}
