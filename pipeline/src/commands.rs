@@ -176,6 +176,25 @@ pub fn demo(out: &Path, scenario: &str, duration_s: f64, mode: ProgressMode) -> 
         score.n_events,
         score.precision()
     );
+    let comparison = compare(&results_dir, &simulated.truth_spikes, 0.5, None)?;
+    println!(
+        "\n  sorting against the simulated truth (±0.5 ms, one to one; {}):",
+        results_dir.join("comparison.parquet").display()
+    );
+    for line in comparison.describe().lines() {
+        println!("  {line}");
+    }
+    let good = comparison.truth.iter().filter(|m| m.accuracy() >= 0.8).count();
+    let small = read_small_units(&results_dir.join("units.parquet"))?;
+    let trusted: Vec<f64> =
+        comparison.sorted_best_accuracy.iter().filter(|(u, _)| !small.contains(u)).map(|(_, &a)| a).collect();
+    println!(
+        "  {good} of {} simulated units found at accuracy ≥ 0.8; {} of {} sorted units not flagged small match no simulated unit at ≥ 0.5 ({} small units not counted)",
+        comparison.truth.len(),
+        trusted.iter().filter(|&&a| a < 0.5).count(),
+        trusted.len(),
+        small.len()
+    );
     println!("\n  Research software: check results before drawing any conclusion. Not a medical device.");
     Ok(())
 }
@@ -211,4 +230,60 @@ pub fn exit_code(error: &anyhow::Error) -> u8 {
     } else {
         crate::EXIT_FAILED
     }
+}
+
+/// The sample rate a spikes table implies (sample ÷ time_s of a row with time > 0).
+fn implied_sample_rate(path: &Path) -> anyhow::Result<f64> {
+    for batch in read_table(path)? {
+        let samples: &Int64Array = column(path, &batch, "sample")?;
+        let times: &Float64Array = column(path, &batch, "time_s")?;
+        if let Some(i) = (0..batch.num_rows()).find(|&i| times.value(i) > 0.0) {
+            return Ok(samples.value(i) as f64 / times.value(i));
+        }
+    }
+    anyhow::bail!("{}: no spike with time_s > 0 to infer the sample rate from", path.display())
+}
+
+/// `spikeyard compare`: score `sorting` (a spikes table, or a results
+/// folder holding spikes.parquet) against `truth` (a spikes table with
+/// unit_id, sample, time_s), write the table to `out` and return it.
+///
+/// # Errors
+/// Tables missing or malformed.
+pub fn compare(
+    sorting: &Path,
+    truth: &Path,
+    window_ms: f64,
+    out: Option<&Path>,
+) -> anyhow::Result<crate::compare::Comparison> {
+    let sorting = if sorting.is_dir() { sorting.join("spikes.parquet") } else { sorting.to_path_buf() };
+    anyhow::ensure!(
+        window_ms.is_finite() && window_ms > 0.0,
+        "--window-ms is {window_ms}, but it must be greater than 0"
+    );
+    let sample_rate_hz = implied_sample_rate(truth)?;
+    let window = (window_ms * 1e-3 * sample_rate_hz).round() as i64;
+    let comparison =
+        crate::compare::compare(&crate::compare::read_trains(truth)?, &crate::compare::read_trains(&sorting)?, window);
+    let out = out.map_or_else(|| sorting.with_file_name("comparison.parquet"), Path::to_path_buf);
+    spikeyard_contract::table::write_table(
+        &out,
+        &comparison.to_batch(),
+        &[(spikeyard_contract::table::META_WRITER, format!("spikeyard compare {}", env!("CARGO_PKG_VERSION")))],
+    )?;
+    Ok(comparison)
+}
+
+/// Units flagged `small` in a units table.
+///
+/// # Errors
+/// The table is missing or lacks the columns.
+pub fn read_small_units(path: &Path) -> anyhow::Result<Vec<i64>> {
+    let mut small = Vec::new();
+    for batch in read_table(path)? {
+        let ids: &Int32Array = column(path, &batch, "unit_id")?;
+        let flags: &arrow_array::BooleanArray = column(path, &batch, "small")?;
+        small.extend(ids.values().iter().zip(flags.iter()).filter(|(_, f)| *f == Some(true)).map(|(&u, _)| u as i64));
+    }
+    Ok(small)
 }

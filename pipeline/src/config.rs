@@ -158,7 +158,7 @@ mod tests {
     fn default_config_parses_with_filter_then_detect() {
         let config = PipelineConfig::load(None).unwrap();
         let names: Vec<_> = config.stages.iter().map(|s| s.name.as_str()).collect();
-        assert_eq!(names, vec!["filter", "detect"]);
+        assert_eq!(names, vec!["filter", "detect", "features", "cluster"]);
     }
 
     // The default config file must say exactly what the stages' defaults are.
@@ -171,12 +171,23 @@ mod tests {
         let detect: spikeyard_detect::params::DetectParams =
             serde_json::from_value(config.stages[1].params.clone()).unwrap();
         assert_eq!(detect, spikeyard_detect::params::DetectParams::default());
+        let features: spikeyard_features::params::FeaturesParams =
+            serde_json::from_value(config.stages[2].params.clone()).unwrap();
+        assert_eq!(features, spikeyard_features::params::FeaturesParams::default());
+        let cluster: spikeyard_cluster::params::ClusterParams =
+            serde_json::from_value(config.stages[3].params.clone()).unwrap();
+        assert_eq!(cluster, spikeyard_cluster::params::ClusterParams::default());
         assert_eq!(config.run, RunSettings::default());
         // And it lists every parameter, so the file documents them all.
         let listed = |i: usize| config.stages[i].params.as_object().unwrap().len();
         let all = |v: serde_json::Value| v.as_object().unwrap().len();
         assert_eq!(listed(0), all(serde_json::to_value(spikeyard_filter::params::FilterParams::default()).unwrap()));
         assert_eq!(listed(1), all(serde_json::to_value(spikeyard_detect::params::DetectParams::default()).unwrap()));
+        assert_eq!(
+            listed(2),
+            all(serde_json::to_value(spikeyard_features::params::FeaturesParams::default()).unwrap())
+        );
+        assert_eq!(listed(3), all(serde_json::to_value(spikeyard_cluster::params::ClusterParams::default()).unwrap()));
     }
 
     #[test]

@@ -12,9 +12,11 @@
 //! - [`runner`]: runs the planned stages as child processes, shows their
 //!   progress, writes each stage's manifest and publishes the tables.
 //! - [`simulate`]: simulated recordings with ground truth, for the demo
-//!   and tests; [`truth`] scores detections against it.
+//!   and tests; [`truth`] scores detections against it and [`compare`]
+//!   scores a sorting.
 
 pub mod commands;
+pub mod compare;
 pub mod config;
 pub mod plan;
 pub mod runner;

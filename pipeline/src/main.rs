@@ -52,6 +52,21 @@ enum Command {
         #[arg(long, default_value_t = 60.0)]
         duration_s: f64,
     },
+    /// Score a sorting against ground truth (one-to-one spike matching).
+    Compare {
+        /// A results folder (its spikes.parquet) or a spikes table.
+        #[arg(long)]
+        sorting: PathBuf,
+        /// Ground-truth spikes table (unit_id, sample, time_s), e.g. truth_spikes.parquet.
+        #[arg(long)]
+        truth: PathBuf,
+        /// Matching window, ± ms.
+        #[arg(long, default_value_t = 0.5)]
+        window_ms: f64,
+        /// Where to write the table; default comparison.parquet beside the sorting.
+        #[arg(long)]
+        out: Option<PathBuf>,
+    },
     /// List the built-in stages and where their executables are.
     Stages,
     /// Print the built-in default config (a starting point for your own).
@@ -69,6 +84,9 @@ fn main() -> ExitCode {
             commands::simulate(&out, &scenario, duration_s, seed).map(|_| ())
         }
         Command::Demo { out, scenario, duration_s } => commands::demo(&out, &scenario, duration_s, mode),
+        Command::Compare { sorting, truth, window_ms, out } => {
+            commands::compare(&sorting, &truth, window_ms, out.as_deref()).map(|c| print!("{}", c.describe()))
+        }
         Command::Stages => {
             print!("{}", commands::list_stages());
             Ok(())

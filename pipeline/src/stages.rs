@@ -42,6 +42,22 @@ pub const BUILTIN_STAGES: &[BuiltinStage] = &[
             p.check(rate).map(|_| Vec::new()).map_err(|e| format!("params: {e}"))
         },
     },
+    BuiltinStage {
+        name: "features",
+        about: "aligned multi-electrode snippets, PCA features, positions",
+        check: |params, rate| {
+            let p: spikeyard_features::params::FeaturesParams = parse_params(params)?;
+            p.check(rate).map(|_| Vec::new()).map_err(|e| format!("params: {e}"))
+        },
+    },
+    BuiltinStage {
+        name: "cluster",
+        about: "units per neighbourhood by BIC-selected mixtures, merged; spikes, units, templates",
+        check: |params, rate| {
+            let p: spikeyard_cluster::params::ClusterParams = parse_params(params)?;
+            p.check(rate).map(|_| Vec::new()).map_err(|e| format!("params: {e}"))
+        },
+    },
 ];
 
 pub fn builtin(name: &str) -> Option<&'static BuiltinStage> {

@@ -1,1 +1,515 @@
+//! The cluster stage: events become units.
+//!
+//! Data flow of [`run`]:
+//! 1. read `features.parquet` (from the features stage) once to count the
+//!    events of each electrode neighbourhood (events are grouped by the
+//!    electrode they were detected on), and again to draw a seeded subset
+//!    of each group for fitting;
+//! 2. per group, in parallel: a mixture model with the number of units
+//!    chosen by BIC ([`model`]);
+//! 3. every event is assigned to the most probable unit of its group
+//!    (streamed);
+//! 4. templates: mean filtered waveforms of a seeded subset of each unit's
+//!    spikes on the electrodes around it, in one pass over the recording;
+//! 5. units that are one neuron (close positions, correlated templates)
+//!    are merged ([`merge`]), spikes counted twice within a unit are
+//!    dropped, units are numbered by electrode and amplitude;
+//! 6. `spikes.parquet`, `units.parquet` and `templates.parquet`.
+//!
+//! Memory: the fitting subsets, one (sample, unit) pair per event, and the
+//! templates. The features are streamed.
+
+pub mod merge;
 pub mod model;
+pub mod params;
+
+use arrow_array::{
+    Array, ArrayRef, BooleanArray, FixedSizeListArray, Float32Array, Float64Array, Int32Array, Int64Array, RecordBatch,
+};
+use arrow_schema::{DataType, Field, Schema};
+use merge::{Template, TemplateSummary};
+use model::Mixture;
+use params::{ClusterParams, ValidClusterParams};
+use parquet::arrow::arrow_reader::ParquetRecordBatchReaderBuilder;
+use rayon::prelude::*;
+use spikeyard_contract::events::{for_each_event_window, EventRecord};
+use spikeyard_contract::table::{column, write_table, META_WRITER};
+use spikeyard_contract::{ContractError, ProgressReporter, Recording, StageFailure, StageReport, StageRequest};
+use std::path::Path;
+use std::sync::Arc;
+
+pub const EXECUTABLE: &str = "spikeyard-cluster";
+pub const VERSION: &str = env!("CARGO_PKG_VERSION");
+
+pub const SPIKES_TABLE: &str = "spikes.parquet";
+pub const UNITS_TABLE: &str = "units.parquet";
+pub const TEMPLATES_TABLE: &str = "templates.parquet";
+
+/// One batch of the features table, columns borrowed.
+pub struct FeatureBatch<'a> {
+    pub samples: &'a Int64Array,
+    pub channels: &'a Int32Array,
+    pub amplitudes: &'a Float32Array,
+    pub x_um: &'a Float32Array,
+    pub y_um: &'a Float32Array,
+    pub features: &'a Float32Array,
+    pub width: usize,
+}
+
+impl FeatureBatch<'_> {
+    pub fn len(&self) -> usize {
+        self.samples.len()
+    }
+    pub fn is_empty(&self) -> bool {
+        self.samples.is_empty()
+    }
+    pub fn row(&self, i: usize) -> &[f32] {
+        &self.features.values()[i * self.width..(i + 1) * self.width]
+    }
+}
+
+/// Stream the features table batch by batch.
+///
+/// # Errors
+/// The table cannot be read or lacks a column, with its path.
+pub fn for_each_feature_batch(
+    path: &Path,
+    mut visit: impl FnMut(&FeatureBatch) -> Result<(), StageFailure>,
+) -> Result<(), StageFailure> {
+    let file = std::fs::File::open(path).map_err(|e| StageFailure::bad_input(ContractError::io(path, e)))?;
+    let parquet = |source| StageFailure::bad_input(ContractError::Parquet { path: path.to_path_buf(), source });
+    let reader = ParquetRecordBatchReaderBuilder::try_new(file)
+        .map_err(parquet)?
+        .with_batch_size(65536)
+        .build()
+        .map_err(parquet)?;
+    for batch in reader {
+        let batch =
+            batch.map_err(|source| StageFailure::failed(ContractError::Arrow { path: path.to_path_buf(), source }))?;
+        let list: &FixedSizeListArray = column(path, &batch, "features")?;
+        let features = list.values().as_any().downcast_ref::<Float32Array>().ok_or_else(|| {
+            StageFailure::bad_input(ContractError::Format {
+                path: path.to_path_buf(),
+                message: "features are not float32".into(),
+            })
+        })?;
+        visit(&FeatureBatch {
+            samples: column(path, &batch, "sample")?,
+            channels: column(path, &batch, "channel")?,
+            amplitudes: column(path, &batch, "amplitude_uv")?,
+            x_um: column(path, &batch, "x_um")?,
+            y_um: column(path, &batch, "y_um")?,
+            features,
+            width: list.value_length() as usize,
+        })?;
+    }
+    Ok(())
+}
+
+/// Seeded choice of `index` with probability `p` (independent per salt).
+fn chosen(seed: u64, salt: u64, index: u64, probability: f64) -> bool {
+    let mut z = seed ^ salt.wrapping_mul(0xD1B5_4A32_D192_ED03) ^ index.wrapping_mul(0x9E37_79B9_7F4A_7C15);
+    z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
+    z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
+    z ^= z >> 31;
+    ((z >> 11) as f64 / (1u64 << 53) as f64) < probability
+}
+
+/// The fitted model of one electrode's group of events.
+pub struct GroupModel {
+    /// Feature dimensions used (those that vary in the group).
+    pub dims: Vec<usize>,
+    pub mixture: Mixture,
+    /// Number of the group's first unit among all groups' units.
+    pub first_unit: usize,
+}
+
+impl GroupModel {
+    fn unit_of(&self, row: &[f32]) -> usize {
+        let x: Vec<f64> = self.dims.iter().map(|&d| row[d] as f64).collect();
+        self.first_unit + self.mixture.predict(&x)
+    }
+}
+
+/// Fit every group's model from its fitting rows (parallel over groups;
+/// each group's fit is seeded by the group, so the thread count does not
+/// matter).
+pub fn fit_groups(fit_rows: &[Vec<Vec<f32>>], params: &ValidClusterParams, seed: u64) -> Vec<Option<GroupModel>> {
+    let fits: Vec<Option<(Vec<usize>, Mixture)>> = fit_rows
+        .par_iter()
+        .enumerate()
+        .map(|(channel, rows)| {
+            if rows.is_empty() {
+                return None;
+            }
+            let width = rows[0].len();
+            let dims: Vec<usize> = (0..width)
+                .filter(|&d| {
+                    let first = rows[0][d];
+                    rows.iter().any(|r| r[d] != first)
+                })
+                .collect();
+            let data: Vec<Vec<f64>> = rows.iter().map(|r| dims.iter().map(|&d| r[d] as f64).collect()).collect();
+            let group_seed = seed ^ (channel as u64 + 1).wrapping_mul(0xA076_1D64_78BD_642F);
+            let mixture = if dims.is_empty() {
+                None
+            } else {
+                model::select_by_bic(
+                    &data,
+                    dims.len(),
+                    params.method,
+                    params.max_units_per_channel,
+                    params.min_events_per_unit,
+                    params.runs,
+                    group_seed,
+                )
+            };
+            // A group too uniform to fit is one unit.
+            let mixture = mixture.unwrap_or_else(|| Mixture {
+                components: vec![model::Component {
+                    weight: 1.0,
+                    mean: vec![0.0; dims.len()],
+                    cholesky: identity(dims.len()),
+                    log_det: 0.0,
+                }],
+                bic: f64::NAN,
+            });
+            Some((dims, mixture))
+        })
+        .collect();
+    let mut next_unit = 0;
+    fits.into_iter()
+        .map(|fit| {
+            fit.map(|(dims, mixture)| {
+                let first_unit = next_unit;
+                next_unit += mixture.components.len();
+                GroupModel { dims, mixture, first_unit }
+            })
+        })
+        .collect()
+}
+
+fn identity(d: usize) -> Vec<f64> {
+    (0..d * d).map(|i| if i % (d + 1) == 0 { 1.0 } else { 0.0 }).collect()
+}
+
+/// One assigned spike.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Assigned {
+    pub sample: u64,
+    pub channel: u32,
+    pub unit: u32,
+    pub amplitude_uv: f32,
+    pub x_um: f32,
+    pub y_um: f32,
+}
+
+/// Mean waveforms of a seeded subset of each unit's spikes, one pass over the recording.
+fn measure_templates(
+    recording: &Recording,
+    spikes: &[Assigned],
+    n_units: usize,
+    unit_channels: &[Vec<usize>],
+    params: &ValidClusterParams,
+    seed: u64,
+    origin: &Path,
+) -> Result<Vec<Template>, StageFailure> {
+    let mut counts = vec![0usize; n_units];
+    for s in spikes {
+        counts[s.unit as usize] += 1;
+    }
+    let length = params.template_before_frames + params.template_after_frames + 1;
+    let mut sums: Vec<Vec<Vec<f64>>> = unit_channels.iter().map(|c| vec![vec![0.0; length]; c.len()]).collect();
+    let mut averaged = vec![0usize; n_units];
+    let chosen_spikes = spikes.iter().enumerate().filter(|(i, s)| {
+        let probability = params.template_spikes as f64 / counts[s.unit as usize].max(1) as f64;
+        chosen(seed, 0x7E3D, *i as u64, probability)
+    });
+    let events = chosen_spikes.map(|(i, s)| {
+        Ok(EventRecord { index: i as u64, sample: s.sample, channel: s.channel as usize, amplitude_uv: s.amplitude_uv })
+    });
+    let margin = params.template_before_frames.max(params.template_after_frames) + 1;
+    let n_channels = recording.n_channels;
+    for_each_event_window(recording, events, origin, params.chunk_frames, margin, |window| {
+        for event in window.events {
+            let unit = spikes[event.index as usize].unit as usize;
+            averaged[unit] += 1;
+            for (row, &channel) in sums[unit].iter_mut().zip(&unit_channels[unit]) {
+                for (k, value) in row.iter_mut().enumerate() {
+                    let frame = event.sample as i64 - params.template_before_frames as i64 + k as i64;
+                    *value += window.value(frame, channel, n_channels) as f64;
+                }
+            }
+        }
+        Ok::<(), StageFailure>(())
+    })?;
+    Ok(sums
+        .into_iter()
+        .zip(unit_channels)
+        .zip(averaged)
+        .map(|((rows, channels), n)| Template {
+            channels: channels.clone(),
+            values: rows.into_iter().map(|row| row.into_iter().map(|v| v / n.max(1) as f64).collect()).collect(),
+            n_averaged: n,
+        })
+        .collect())
+}
+
+/// Run the stage on a request.
+///
+/// # Errors
+/// Bad input ([`StageFailure::bad_input`]) or failures while working.
+pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
+    let mut report = StageReport::default();
+    let input = match request.artifact("filtered.toml") {
+        Some(path) => path.to_path_buf(),
+        None => {
+            report.warn("no earlier stage wrote filtered.toml; templates come from the raw recording");
+            request.recording.clone()
+        }
+    };
+    let recording = Recording::open(&input).map_err(StageFailure::bad_input)?;
+    let features_path = request.require_artifact("features.parquet").map_err(StageFailure::bad_input)?.to_path_buf();
+    let params: ClusterParams = request.params().map_err(StageFailure::bad_input)?;
+    let valid = params.check(recording.sample_rate_hz).map_err(|message| {
+        StageFailure::bad_input(ContractError::Param {
+            path: request.path.clone(),
+            key: format!("{}.params", request.stage),
+            message,
+        })
+    })?;
+    let n_channels = recording.n_channels;
+    let channel_of = |batch: &FeatureBatch, i: usize| -> Result<usize, StageFailure> {
+        let channel = batch.channels.value(i);
+        usize::try_from(channel).ok().filter(|c| *c < n_channels).ok_or_else(|| {
+            StageFailure::bad_input(ContractError::Format {
+                path: features_path.clone(),
+                message: format!("channel {channel} does not exist in the recording ({n_channels} channels)"),
+            })
+        })
+    };
+
+    // 1. Count, then draw each group's fitting subset.
+    let mut counts = vec![0u64; n_channels];
+    for_each_feature_batch(&features_path, |batch| {
+        for i in 0..batch.len() {
+            counts[channel_of(batch, i)?] += 1;
+        }
+        Ok(())
+    })?;
+    let mut fit_rows: Vec<Vec<Vec<f32>>> = vec![Vec::new(); n_channels];
+    let mut index = 0u64;
+    for_each_feature_batch(&features_path, |batch| {
+        for i in 0..batch.len() {
+            let channel = channel_of(batch, i)?;
+            let probability = valid.fit_events_per_channel as f64 / counts[channel].max(1) as f64;
+            if chosen(request.seed, 0xF17, index, probability) {
+                fit_rows[channel].push(batch.row(i).to_vec());
+            }
+            index += 1;
+        }
+        Ok(())
+    })?;
+
+    // 2. Fit every group.
+    let models = fit_groups(&fit_rows, &valid, request.seed);
+    drop(fit_rows);
+    let n_local_units = models.iter().flatten().map(|m| m.mixture.components.len()).sum::<usize>();
+
+    // 3. Assign every event.
+    let n_events: u64 = counts.iter().sum();
+    let mut progress = ProgressReporter::new(n_events, "events");
+    let mut spikes: Vec<Assigned> = Vec::with_capacity(n_events as usize);
+    let mut unit_group = vec![0usize; n_local_units];
+    for (channel, model) in models.iter().enumerate() {
+        if let Some(model) = model {
+            for u in 0..model.mixture.components.len() {
+                unit_group[model.first_unit + u] = channel;
+            }
+        }
+    }
+    for_each_feature_batch(&features_path, |batch| {
+        let assigned: Vec<Result<Assigned, StageFailure>> = (0..batch.len())
+            .into_par_iter()
+            .map(|i| {
+                let channel = channel_of(batch, i)?;
+                let model = models[channel].as_ref().expect("every group with events has a model");
+                Ok(Assigned {
+                    sample: batch.samples.value(i).max(0) as u64,
+                    channel: channel as u32,
+                    unit: model.unit_of(batch.row(i)) as u32,
+                    amplitude_uv: batch.amplitudes.value(i),
+                    x_um: batch.x_um.value(i),
+                    y_um: batch.y_um.value(i),
+                })
+            })
+            .collect();
+        for spike in assigned {
+            spikes.push(spike?);
+        }
+        progress.advance(batch.len() as u64);
+        Ok(())
+    })?;
+
+    // 4. Templates of the local units.
+    let electrodes = &recording.electrodes;
+    let unit_channels: Vec<Vec<usize>> = unit_group
+        .iter()
+        .map(|&g| {
+            let centre = &electrodes[g];
+            electrodes
+                .iter()
+                .filter(|e| (e.x_um - centre.x_um).hypot(e.y_um - centre.y_um) <= valid.template_radius_um)
+                .map(|e| e.channel)
+                .collect()
+        })
+        .collect();
+    let local_templates =
+        measure_templates(&recording, &spikes, n_local_units, &unit_channels, &valid, request.seed, &features_path)?;
+    let local_summaries: Vec<TemplateSummary> = local_templates.iter().map(|t| t.summarise(electrodes)).collect();
+
+    // 5. Merge, then number units by main electrode and amplitude.
+    let merged =
+        merge::merge_groups(&local_templates, &local_summaries, valid.merge_distance_um, valid.merge_min_correlation);
+    let n_merged = merged.iter().copied().max().map_or(0, |m| m + 1);
+    let templates: Vec<Template> = (0..n_merged)
+        .map(|g| {
+            merge::combine(
+                &local_templates.iter().zip(&merged).filter(|(_, &m)| m == g).map(|(t, _)| t).collect::<Vec<_>>(),
+            )
+        })
+        .collect();
+    let summaries: Vec<TemplateSummary> = templates.iter().map(|t| t.summarise(electrodes)).collect();
+    let mut order: Vec<usize> = (0..n_merged).collect();
+    order.sort_by(|&a, &b| {
+        summaries[a]
+            .channel
+            .cmp(&summaries[b].channel)
+            .then(summaries[a].trough_uv.total_cmp(&summaries[b].trough_uv))
+            .then(a.cmp(&b))
+    });
+    let mut final_id = vec![0u32; n_merged];
+    for (id, &g) in order.iter().enumerate() {
+        final_id[g] = id as u32;
+    }
+    let merged_from: Vec<usize> = (0..n_merged).map(|g| merged.iter().filter(|&&m| m == g).count()).collect();
+    for spike in spikes.iter_mut() {
+        spike.unit = final_id[merged[spike.unit as usize]];
+    }
+    // Spikes in sample order are already sorted; drop a unit's spike that
+    // follows its previous kept spike within the duplicate window.
+    let mut last_kept: Vec<Option<u64>> = vec![None; n_merged];
+    let before = spikes.len();
+    spikes.retain(|s| {
+        let slot = &mut last_kept[s.unit as usize];
+        if slot.is_some_and(|last| s.sample < last + valid.duplicate_frames.max(1)) {
+            return false;
+        }
+        *slot = Some(s.sample);
+        true
+    });
+    let duplicates = before - spikes.len();
+
+    // 6. Tables.
+    let metadata = [
+        (META_WRITER, format!("{EXECUTABLE} {VERSION}")),
+        ("spikeyard.params", serde_json::to_string(&params).unwrap_or_default()),
+    ];
+    let fs = recording.sample_rate_hz;
+    let spikes_batch = RecordBatch::try_new(
+        Arc::new(Schema::new(vec![
+            Field::new("unit_id", DataType::Int32, false),
+            Field::new("sample", DataType::Int64, false),
+            Field::new("time_s", DataType::Float64, false),
+            Field::new("channel", DataType::Int32, false),
+            Field::new("amplitude_uv", DataType::Float32, false),
+            Field::new("x_um", DataType::Float32, false),
+            Field::new("y_um", DataType::Float32, false),
+        ])),
+        vec![
+            Arc::new(Int32Array::from_iter_values(spikes.iter().map(|s| s.unit as i32))) as ArrayRef,
+            Arc::new(Int64Array::from_iter_values(spikes.iter().map(|s| s.sample as i64))),
+            Arc::new(Float64Array::from_iter_values(spikes.iter().map(|s| s.sample as f64 / fs))),
+            Arc::new(Int32Array::from_iter_values(spikes.iter().map(|s| s.channel as i32))),
+            Arc::new(Float32Array::from_iter_values(spikes.iter().map(|s| s.amplitude_uv))),
+            Arc::new(Float32Array::from_iter_values(spikes.iter().map(|s| s.x_um))),
+            Arc::new(Float32Array::from_iter_values(spikes.iter().map(|s| s.y_um))),
+        ],
+    )
+    .expect("spike columns match their schema");
+    write_table(&request.output(SPIKES_TABLE), &spikes_batch, &metadata)?;
+
+    let mut n_spikes = vec![0i64; n_merged];
+    for s in &spikes {
+        n_spikes[s.unit as usize] += 1;
+    }
+    let duration = recording.duration_s();
+    let by_id: Vec<usize> = order.clone();
+    let units_batch = RecordBatch::try_new(
+        Arc::new(Schema::new(vec![
+            Field::new("unit_id", DataType::Int32, false),
+            Field::new("channel", DataType::Int32, false),
+            Field::new("x_um", DataType::Float64, false),
+            Field::new("y_um", DataType::Float64, false),
+            Field::new("n_spikes", DataType::Int64, false),
+            Field::new("firing_rate_hz", DataType::Float64, false),
+            Field::new("amplitude_uv", DataType::Float64, false),
+            Field::new("peak_to_peak_uv", DataType::Float64, false),
+            Field::new("n_channels", DataType::Int32, false),
+            Field::new("merged_from", DataType::Int32, false),
+            Field::new("small", DataType::Boolean, false),
+        ])),
+        vec![
+            Arc::new(Int32Array::from_iter_values((0..n_merged).map(|id| id as i32))) as ArrayRef,
+            Arc::new(Int32Array::from_iter_values(by_id.iter().map(|&g| summaries[g].channel as i32))),
+            Arc::new(Float64Array::from_iter_values(by_id.iter().map(|&g| summaries[g].x_um))),
+            Arc::new(Float64Array::from_iter_values(by_id.iter().map(|&g| summaries[g].y_um))),
+            Arc::new(Int64Array::from_iter_values((0..n_merged).map(|id| n_spikes[id]))),
+            Arc::new(Float64Array::from_iter_values((0..n_merged).map(|id| n_spikes[id] as f64 / duration))),
+            Arc::new(Float64Array::from_iter_values(by_id.iter().map(|&g| summaries[g].trough_uv))),
+            Arc::new(Float64Array::from_iter_values(by_id.iter().map(|&g| summaries[g].peak_to_peak_uv))),
+            Arc::new(Int32Array::from_iter_values(by_id.iter().map(|&g| templates[g].channels.len() as i32))),
+            Arc::new(Int32Array::from_iter_values(by_id.iter().map(|&g| merged_from[g] as i32))),
+            Arc::new(BooleanArray::from_iter((0..n_merged).map(|id| Some((n_spikes[id] as usize) < valid.min_spikes)))),
+        ],
+    )
+    .expect("unit columns match their schema");
+    write_table(&request.output(UNITS_TABLE), &units_batch, &metadata)?;
+
+    let rows: Vec<(i32, i32, i32, f32)> = by_id
+        .iter()
+        .enumerate()
+        .flat_map(|(id, &g)| {
+            let t = &templates[g];
+            t.channels.iter().zip(&t.values).flat_map(move |(&channel, row)| {
+                row.iter().enumerate().map(move |(k, &v)| {
+                    (id as i32, channel as i32, k as i32 - valid.template_before_frames as i32, v as f32)
+                })
+            })
+        })
+        .collect();
+    let templates_batch = RecordBatch::try_new(
+        Arc::new(Schema::new(vec![
+            Field::new("unit_id", DataType::Int32, false),
+            Field::new("channel", DataType::Int32, false),
+            Field::new("lag_samples", DataType::Int32, false),
+            Field::new("value_uv", DataType::Float32, false),
+        ])),
+        vec![
+            Arc::new(Int32Array::from_iter_values(rows.iter().map(|r| r.0))) as ArrayRef,
+            Arc::new(Int32Array::from_iter_values(rows.iter().map(|r| r.1))),
+            Arc::new(Int32Array::from_iter_values(rows.iter().map(|r| r.2))),
+            Arc::new(Float32Array::from_iter_values(rows.iter().map(|r| r.3))),
+        ],
+    )
+    .expect("template columns match their schema");
+    write_table(&request.output(TEMPLATES_TABLE), &templates_batch, &metadata)?;
+
+    let summary = &mut report.summary;
+    summary.insert("units".into(), n_merged.into());
+    summary.insert("units_before_merge".into(), n_local_units.into());
+    summary.insert("small_units".into(), n_spikes.iter().filter(|&&n| (n as usize) < valid.min_spikes).count().into());
+    summary.insert("spikes".into(), spikes.len().into());
+    summary.insert("duplicates_dropped".into(), duplicates.into());
+    Ok(report)
+}
