@@ -508,6 +508,21 @@ fn spikes_and_units_tables_have_the_contract_columns() {
     for i in 0..units.num_rows() {
         assert!((rates.value(i) - n_spikes.value(i) as f64 / 8.0).abs() < 1e-9);
     }
+    // Provenance travels in the Parquet key-value metadata.
+    let file = std::fs::File::open(&spikes_path).unwrap();
+    let builder = parquet::arrow::arrow_reader::ParquetRecordBatchReaderBuilder::try_new(file).unwrap();
+    let metadata: std::collections::HashMap<String, String> = builder
+        .metadata()
+        .file_metadata()
+        .key_value_metadata()
+        .unwrap()
+        .iter()
+        .map(|kv| (kv.key.clone(), kv.value.clone().unwrap_or_default()))
+        .collect();
+    assert!(metadata["spikeyard.writer"].starts_with("spikeyard-cluster "));
+    assert_eq!(metadata["spikeyard.cache_key"].len(), 64);
+    assert_eq!(metadata["spikeyard.recording_hash"].len(), 64);
+    assert!(metadata["spikeyard.params"].contains("merge_min_correlation"));
     // Positions stay on the array (0..1400 µm for the 8×8 grid at 200 µm).
     let xs: &arrow_array::Float64Array = column(&units_path, units, "x_um").unwrap();
     assert!(xs.values().iter().all(|x| (-1.0..=1401.0).contains(x)));

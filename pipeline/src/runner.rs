@@ -235,6 +235,8 @@ fn run_stage(
             .collect(),
         threads: plan.threads,
         seed: plan.seed,
+        cache_key: step.cache_key.clone(),
+        recording_hash: plan.recording_hash.clone(),
         path: PathBuf::new(),
     };
     let request_path = stages_dir.join(format!("{}.request.json", step.name));

@@ -33,7 +33,7 @@ use params::{ClusterParams, ValidClusterParams};
 use parquet::arrow::arrow_reader::ParquetRecordBatchReaderBuilder;
 use rayon::prelude::*;
 use spikeyard_contract::events::{for_each_event_window, EventRecord};
-use spikeyard_contract::table::{column, write_table, META_WRITER};
+use spikeyard_contract::table::{column, write_table};
 use spikeyard_contract::{ContractError, ProgressReporter, Recording, StageFailure, StageReport, StageRequest};
 use std::path::Path;
 use std::sync::Arc;
@@ -150,20 +150,15 @@ pub fn fit_groups(fit_rows: &[Vec<Vec<f32>>], params: &ValidClusterParams, seed:
                 })
                 .collect();
             let data: Vec<Vec<f64>> = rows.iter().map(|r| dims.iter().map(|&d| r[d] as f64).collect()).collect();
-            let group_seed = seed ^ (channel as u64 + 1).wrapping_mul(0xA076_1D64_78BD_642F);
-            let mixture = if dims.is_empty() {
-                None
-            } else {
-                model::select_by_bic(
-                    &data,
-                    dims.len(),
-                    params.method,
-                    params.max_units_per_channel,
-                    params.min_events_per_unit,
-                    params.runs,
-                    group_seed,
-                )
+            let fit = model::GroupFit {
+                method: params.method,
+                max_units: params.max_units_per_channel,
+                min_points_per_unit: params.min_events_per_unit,
+                runs: params.runs,
+                dbscan_eps: params.dbscan_eps,
+                seed: seed ^ (channel as u64 + 1).wrapping_mul(0xA076_1D64_78BD_642F),
             };
+            let mixture = if dims.is_empty() { None } else { model::fit_group(&data, dims.len(), &fit) };
             // A group too uniform to fit is one unit.
             let mixture = mixture.unwrap_or_else(|| Mixture {
                 components: vec![model::Component {
@@ -411,10 +406,7 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     let duplicates = before - spikes.len();
 
     // 6. Tables.
-    let metadata = [
-        (META_WRITER, format!("{EXECUTABLE} {VERSION}")),
-        ("spikeyard.params", serde_json::to_string(&params).unwrap_or_default()),
-    ];
+    let metadata = request.table_metadata(EXECUTABLE, VERSION, &params);
     let fs = recording.sample_rate_hz;
     let spikes_batch = RecordBatch::try_new(
         Arc::new(Schema::new(vec![

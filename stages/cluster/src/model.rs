@@ -194,35 +194,77 @@ pub fn fit_kmeans(rows: &[Vec<f64>], d: usize, k: usize, runs: u64, seed: u64) -
     Some(mixture)
 }
 
+/// DBSCAN (density clusters: `min_points` neighbours within `eps`, in
+/// feature units) on the fitting rows; each cluster becomes a Gaussian
+/// component (its mean and covariance, weighted by size) so that the other
+/// events are assigned by the same rule as for a mixture. Rows DBSCAN calls
+/// noise take no part. `None` when it finds no cluster.
+pub fn fit_dbscan(rows: &[Vec<f64>], d: usize, eps: f64, min_points: usize) -> Option<Mixture> {
+    let labels = linfa_clustering::Dbscan::params(min_points).tolerance(eps).transform(&to_array(rows, d)).ok()?;
+    let n_clusters = labels.iter().flatten().copied().max().map_or(0, |m| m + 1);
+    let clustered = labels.iter().filter(|l| l.is_some()).count() as f64;
+    let components: Vec<Component> = (0..n_clusters)
+        .filter_map(|c| {
+            let members: Vec<Vec<f64>> =
+                rows.iter().zip(labels.iter()).filter(|(_, l)| **l == Some(c)).map(|(r, _)| r.clone()).collect();
+            let mut component = fit_single(&members, d)?.components.into_iter().next()?;
+            component.weight = members.len() as f64 / clustered;
+            Some(component)
+        })
+        .collect();
+    (!components.is_empty()).then_some(Mixture { components, bic: f64::NAN })
+}
+
 /// Which model family clusters a neighbourhood.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub enum Method {
+    /// Full-covariance Gaussian mixtures, k chosen by BIC.
     Gmm,
+    /// k-means, k chosen by BIC of the spherical mixture.
     Kmeans,
+    /// DBSCAN; the number of units is the number of density clusters.
+    Dbscan,
 }
 
-/// Fit k = 1..=max_k and keep the lowest BIC (ties to the smaller k).
-/// Each k gets at least `min_points_per_unit` points per component.
+/// Try k = 1..=max_k with `fit` and keep the lowest BIC (ties to the
+/// smaller k); each k gets at least `min_points_per_unit` rows per unit.
 pub fn select_by_bic(
-    rows: &[Vec<f64>],
-    d: usize,
-    method: Method,
+    n_rows: usize,
     max_k: usize,
     min_points_per_unit: usize,
-    runs: u64,
-    seed: u64,
+    fit: impl Fn(usize) -> Option<Mixture>,
 ) -> Option<Mixture> {
-    let largest = max_k.min(rows.len() / min_points_per_unit.max(1)).max(1);
-    (1..=largest)
-        .filter_map(|k| match method {
-            Method::Gmm => fit_gmm(rows, d, k, runs, seed.wrapping_add(k as u64)),
-            Method::Kmeans => fit_kmeans(rows, d, k, runs, seed.wrapping_add(k as u64)),
-        })
-        .fold(None, |best: Option<Mixture>, m| match best {
-            Some(b) if b.bic <= m.bic => Some(b),
-            _ => Some(m),
-        })
+    let largest = max_k.min(n_rows / min_points_per_unit.max(1)).max(1);
+    (1..=largest).filter_map(fit).fold(None, |best: Option<Mixture>, m| match best {
+        Some(b) if b.bic <= m.bic => Some(b),
+        _ => Some(m),
+    })
+}
+
+/// How one neighbourhood is fitted.
+#[derive(Debug, Clone, PartialEq)]
+pub struct GroupFit {
+    pub method: Method,
+    pub max_units: usize,
+    pub min_points_per_unit: usize,
+    pub runs: u64,
+    pub dbscan_eps: f64,
+    pub seed: u64,
+}
+
+/// Fit one neighbourhood's rows with the configured method.
+pub fn fit_group(rows: &[Vec<f64>], d: usize, fit: &GroupFit) -> Option<Mixture> {
+    let seed = |k: usize| fit.seed.wrapping_add(k as u64);
+    match fit.method {
+        Method::Gmm => select_by_bic(rows.len(), fit.max_units, fit.min_points_per_unit, |k| {
+            fit_gmm(rows, d, k, fit.runs, seed(k))
+        }),
+        Method::Kmeans => select_by_bic(rows.len(), fit.max_units, fit.min_points_per_unit, |k| {
+            fit_kmeans(rows, d, k, fit.runs, seed(k))
+        }),
+        Method::Dbscan => fit_dbscan(rows, d, fit.dbscan_eps, fit.min_points_per_unit),
+    }
 }
 
 #[cfg(test)]
@@ -248,8 +290,9 @@ mod tests {
                 rows.push(vec![centre[0] + noise(), centre[1] + noise()]);
             }
         }
-        for method in [Method::Gmm, Method::Kmeans] {
-            let model = select_by_bic(&rows, 2, method, 6, 10, 3, 1).unwrap();
+        for method in [Method::Gmm, Method::Kmeans, Method::Dbscan] {
+            let fit = GroupFit { method, max_units: 6, min_points_per_unit: 10, runs: 3, dbscan_eps: 1.0, seed: 1 };
+            let model = fit_group(&rows, 2, &fit).unwrap();
             assert_eq!(model.components.len(), 3, "{method:?}");
             let labels: Vec<usize> = rows.iter().map(|r| model.predict(r)).collect();
             for blob in 0..3 {

@@ -7,8 +7,10 @@ use serde::{Deserialize, Serialize};
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields, default)]
 pub struct ClusterParams {
-    /// "gmm" (full-covariance Gaussian mixture, default) or "kmeans".
+    /// "gmm" (full-covariance Gaussian mixture, default), "kmeans" or "dbscan".
     pub method: Method,
+    /// DBSCAN neighbourhood radius in feature units (PC scores, µV scale). Default 30.
+    pub dbscan_eps: f64,
     /// Units tried per electrode neighbourhood, 1..=this, chosen by BIC. Default 6.
     pub max_units_per_channel: usize,
     /// Each tried unit needs at least this many fitting events. Default 20.
@@ -40,6 +42,7 @@ impl Default for ClusterParams {
     fn default() -> Self {
         ClusterParams {
             method: Method::Gmm,
+            dbscan_eps: 30.0,
             max_units_per_channel: 6,
             min_events_per_unit: 20,
             fit_events_per_channel: 4000,
@@ -61,6 +64,7 @@ impl Default for ClusterParams {
 #[derive(Debug, Clone, PartialEq)]
 pub struct ValidClusterParams {
     pub method: Method,
+    pub dbscan_eps: f64,
     pub max_units_per_channel: usize,
     pub min_events_per_unit: usize,
     pub fit_events_per_channel: usize,
@@ -117,11 +121,15 @@ impl ClusterParams {
         let template_before_frames = frames("template_before_ms", self.template_before_ms, &mut problems);
         let template_after_frames = frames("template_after_ms", self.template_after_ms, &mut problems);
         let chunk_frames = frames("chunk_seconds", self.chunk_seconds * 1e3, &mut problems).max(1);
+        if !(self.dbscan_eps.is_finite() && self.dbscan_eps > 0.0) {
+            problems.push(format!("dbscan_eps is {}, but it must be greater than 0", self.dbscan_eps));
+        }
         if !problems.is_empty() {
             return Err(problems.join("; "));
         }
         Ok(ValidClusterParams {
             method: self.method,
+            dbscan_eps: self.dbscan_eps,
             max_units_per_channel: self.max_units_per_channel,
             min_events_per_unit: self.min_events_per_unit,
             fit_events_per_channel: self.fit_events_per_channel,

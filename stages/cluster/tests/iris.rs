@@ -1,7 +1,7 @@
 //! The clustering models on Fisher's Iris as shipped by linfa-datasets 0.8.1
 //! (the UCI copy), against scikit-learn 1.9.1: REFERENCES.md C1 and C2.
 
-use spikeyard_cluster::model::{fit_gmm, fit_kmeans, fit_single, Method};
+use spikeyard_cluster::model::{fit_gmm, fit_group, fit_kmeans, fit_single, GroupFit, Method};
 
 fn iris_rows() -> Vec<Vec<f64>> {
     linfa_datasets::iris().records().rows().into_iter().map(|r| r.to_vec()).collect()
@@ -42,6 +42,8 @@ fn gmm_bic_over_k_matches_scikit_learn_and_selects_two() {
         let model = fit_gmm(&rows, 4, k, 10, 0).unwrap();
         assert!(model.bic > two.bic, "k={k}: {}", model.bic);
     }
-    let best = spikeyard_cluster::model::select_by_bic(&rows, 4, Method::Gmm, 5, 10, 10, 0).unwrap();
+    let fit =
+        GroupFit { method: Method::Gmm, max_units: 5, min_points_per_unit: 10, runs: 10, dbscan_eps: 0.0, seed: 0 };
+    let best = fit_group(&rows, 4, &fit).unwrap();
     assert_eq!(best.components.len(), 2);
 }

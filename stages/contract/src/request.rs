@@ -51,6 +51,12 @@ pub struct StageRequest {
     /// Seed for any random choice, from the config.
     #[serde(default)]
     pub seed: u64,
+    /// The orchestrator's cache key of this stage run (provenance).
+    #[serde(default)]
+    pub cache_key: String,
+    /// Content hash of the raw recording (provenance).
+    #[serde(default)]
+    pub recording_hash: String,
     /// Where this request was read from (not part of the JSON).
     #[serde(skip)]
     pub path: PathBuf,
@@ -110,6 +116,23 @@ impl StageRequest {
 
     pub fn output(&self, file: &str) -> PathBuf {
         self.output_dir.join(file)
+    }
+
+    /// Parquet key-value metadata for every table a stage writes: the
+    /// program and version, the parameters, the run's cache key and the
+    /// recording's content hash.
+    pub fn table_metadata(
+        &self,
+        executable: &str,
+        version: &str,
+        params: &impl Serialize,
+    ) -> Vec<(&'static str, String)> {
+        vec![
+            (crate::table::META_WRITER, format!("{executable} {version}")),
+            ("spikeyard.params", serde_json::to_string(params).unwrap_or_default()),
+            ("spikeyard.cache_key", self.cache_key.clone()),
+            ("spikeyard.recording_hash", self.recording_hash.clone()),
+        ]
     }
 }
 
@@ -206,6 +229,8 @@ mod tests {
             artifacts: BTreeMap::new(),
             threads: 0,
             seed: 0,
+            cache_key: String::new(),
+            recording_hash: String::new(),
             path: "req.json".into(),
         }
     }

@@ -21,7 +21,7 @@ use arrow_schema::{DataType, Field, Schema, SchemaRef};
 use kernel::{Event, EventMerger};
 use params::{DetectParams, ValidDetectParams};
 use rayon::prelude::*;
-use spikeyard_contract::table::{column, read_table, write_table, TableWriter, META_WRITER};
+use spikeyard_contract::table::{column, read_table, write_table, TableWriter};
 use spikeyard_contract::{
     noise, ContractError, ProgressReporter, Recording, RecordingError, StageFailure, StageReport, StageRequest,
 };
@@ -212,10 +212,7 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     };
     let noise_uv =
         estimate_noise(&recording, valid.noise_windows, valid.noise_window_frames).map_err(StageFailure::failed)?;
-    let metadata = [
-        (META_WRITER, format!("{EXECUTABLE} {VERSION}")),
-        ("spikeyard.params", serde_json::to_string(&params).unwrap_or_default()),
-    ];
+    let metadata = request.table_metadata(EXECUTABLE, VERSION, &params);
     let noise_batch = RecordBatch::try_new(
         Arc::new(Schema::new(vec![
             Field::new("channel", DataType::Int32, false),

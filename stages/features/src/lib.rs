@@ -25,7 +25,7 @@ use params::{FeaturesParams, ValidFeaturesParams};
 use pca::Pca;
 use rayon::prelude::*;
 use spikeyard_contract::events::{for_each_event_window, EventRecord, EventStream, EventWindow};
-use spikeyard_contract::table::{write_table, TableWriter, META_WRITER};
+use spikeyard_contract::table::{write_table, TableWriter};
 use spikeyard_contract::{ContractError, ProgressReporter, Recording, StageFailure, StageReport, StageRequest};
 use std::sync::Arc;
 
@@ -223,10 +223,7 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
         neighbourhoods: kernel::neighbourhoods(&recording.electrodes, valid.neighbour_radius_um, valid.max_channels),
     };
     let margin = valid.before_frames.max(valid.after_frames) + 4;
-    let metadata = [
-        (META_WRITER, format!("{EXECUTABLE} {VERSION}")),
-        ("spikeyard.params", serde_json::to_string(&params).unwrap_or_default()),
-    ];
+    let metadata = request.table_metadata(EXECUTABLE, VERSION, &params);
 
     // Fitting pass on a seeded subset.
     let mut events = EventStream::open(&events_path).map_err(StageFailure::bad_input)?;

@@ -27,7 +27,7 @@ use params::{FilterParams, Reference, ValidFilterParams};
 use qc::{ChannelStatus, Welch};
 use rayon::prelude::*;
 use spikeyard_contract::recording::F32RecordingWriter;
-use spikeyard_contract::table::{write_table, META_WRITER};
+use spikeyard_contract::table::write_table;
 use spikeyard_contract::{
     noise, Chunk, ContractError, ProgressReporter, Recording, RecordingError, StageFailure, StageReport, StageRequest,
 };
@@ -261,10 +261,7 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
         report.warn("no channel passed QC; the median reference is off");
     }
     let (qc_batch, psd_batch) = qc_tables(&recording, &valid, &qc);
-    let metadata = [
-        (META_WRITER, format!("{EXECUTABLE} {VERSION}")),
-        ("spikeyard.params", serde_json::to_string(&params).unwrap_or_default()),
-    ];
+    let metadata = request.table_metadata(EXECUTABLE, VERSION, &params);
     write_table(&request.output(CHANNEL_QC_TABLE), &qc_batch, &metadata).map_err(StageFailure::failed)?;
     write_table(&request.output(CHANNEL_PSD_TABLE), &psd_batch, &metadata).map_err(StageFailure::failed)?;
 
