@@ -2,7 +2,7 @@
 //! recordings, with the tables read back from Parquet.
 //!
 //! Stage executables are found next to the `spikeyard` binary under test,
-//! so run these with `cargo test --workspace`, which builds them all.
+//! so run these with `cargo test --release --workspace`, which builds them all.
 
 use spikeyard::commands::score_run;
 use spikeyard::simulate::{write_recording, Scenario};
@@ -15,7 +15,7 @@ fn spikeyard_binary() -> PathBuf {
     for stage in ["spikeyard-filter", "spikeyard-detect", "spikeyard-features", "spikeyard-cluster"] {
         assert!(
             binary.with_file_name(stage).exists(),
-            "{stage} is not built next to {}; run the tests with `cargo test --workspace`",
+            "{stage} is not built next to {}; run the tests with `cargo test --release --workspace`",
             binary.display()
         );
     }
@@ -194,14 +194,15 @@ fn cache_reruns_exactly_the_changed_stage_and_what_follows() {
 
 // STYLE.md §5 and the brief: the same inputs give the same tables whatever the thread count.
 #[test]
-fn tables_are_byte_identical_for_one_and_two_threads() {
+fn tables_are_byte_identical_for_one_and_two_threads_and_repeated_runs() {
     let dir = tempfile::tempdir().unwrap();
     let simulated = write_recording(&Scenario::dense_axons(3.0, 5), &dir.path().join("rec")).unwrap();
     let mut outputs = Vec::new();
-    for threads in [1, 2] {
+    // 1 thread, 2 threads, and 2 threads again: repeated runs agree too.
+    for (run_index, threads) in [1, 2, 2].into_iter().enumerate() {
         let config = dir.path().join(format!("threads{threads}.toml"));
         std::fs::write(&config, default_config_with("threads = 0", &format!("threads = {threads}"))).unwrap();
-        let out = dir.path().join(format!("out{threads}"));
+        let out = dir.path().join(format!("out{run_index}"));
         assert_success(&run(&simulated.description, &out, Some(&config)));
         outputs.push(out);
     }
@@ -217,8 +218,13 @@ fn tables_are_byte_identical_for_one_and_two_threads() {
     ];
     for table in tables {
         let a = std::fs::read(outputs[0].join(table)).unwrap();
-        let b = std::fs::read(outputs[1].join(table)).unwrap();
-        assert!(a == b, "{table} differs between 1 and 2 threads");
+        for other in &outputs[1..] {
+            assert!(
+                a == std::fs::read(other.join(table)).unwrap(),
+                "{table} differs between runs ({})",
+                other.display()
+            );
+        }
     }
 }
 
@@ -526,4 +532,135 @@ fn spikes_and_units_tables_have_the_contract_columns() {
     // Positions stay on the array (0..1400 µm for the 8×8 grid at 200 µm).
     let xs: &arrow_array::Float64Array = column(&units_path, units, "x_um").unwrap();
     assert!(xs.values().iter().all(|x| (-1.0..=1401.0).contains(x)));
+}
+
+/// A small f32 recording with one NaN at frame 700, channel 2.
+fn write_with_nan(dir: &Path) -> PathBuf {
+    let mut rng = spikeyard_contract::testing::TestRng::new(1);
+    let mut samples: Vec<f32> = (0..4000 * 4).map(|_| (10.0 * rng.normal()) as f32).collect();
+    samples[700 * 4 + 2] = f32::NAN;
+    spikeyard_contract::testing::write_f32_recording(dir, "nan", 20000.0, 4, 100.0, &samples)
+}
+
+// Issue 6: NaN or Inf in float data is refused by default, masked when the config says so.
+#[test]
+fn non_finite_samples_are_refused_or_masked_as_configured() {
+    let dir = tempfile::tempdir().unwrap();
+    let description = write_with_nan(dir.path());
+    let out = dir.path().join("out");
+    let output = run(&description, &out, None);
+    let message = stderr(&output);
+    assert_eq!(output.status.code(), Some(2), "{message}");
+    assert!(message.contains("nan.bin") && message.contains("frame 700, channel 2 holds NaN"), "{message}");
+    assert!(!out.join("run.json").exists() && !out.join("stages/filter").exists());
+
+    let config = dir.path().join("zero.toml");
+    std::fs::write(&config, default_config_with("non_finite = \"refuse\"", "non_finite = \"zero\"")).unwrap();
+    let output = run(&description, &out, Some(&config));
+    assert_success(&output);
+    assert!(stderr(&output).contains("NaN or infinite samples were replaced by 0"), "{}", stderr(&output));
+}
+
+#[test]
+fn unwritable_output_folder_is_named() {
+    let dir = tempfile::tempdir().unwrap();
+    let description = write_valid(dir.path());
+    let blocker = dir.path().join("a-file");
+    std::fs::write(&blocker, "not a folder").unwrap();
+    let out = blocker.join("out");
+    let output = run(&description, &out, None);
+    let message = stderr(&output);
+    assert_eq!(output.status.code(), Some(1), "{message}");
+    assert!(message.contains("a-file/out") && message.contains("cannot create"), "{message}");
+    assert!(!message.contains("panicked"));
+}
+
+#[test]
+fn duplicate_electrode_positions_are_refused() {
+    let dir = tempfile::tempdir().unwrap();
+    let description = write_valid(dir.path());
+    std::fs::write(dir.path().join("electrodes.csv"), "channel,x_um,y_um\n0,0,0\n1,200,0\n2,200,0\n3,200,200\n")
+        .unwrap();
+    let output = run(&description, &dir.path().join("out"), None);
+    assert_eq!(output.status.code(), Some(2));
+    assert!(stderr(&output).contains("same position (200, 0) µm as channel 1"), "{}", stderr(&output));
+}
+
+/// Every published table of a finished run, by name.
+fn published_tables(out: &Path) -> Vec<(String, Vec<u8>)> {
+    let mut tables: Vec<(String, Vec<u8>)> = std::fs::read_dir(out)
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .filter(|p| p.extension().is_some_and(|x| x == "parquet"))
+        .map(|p| (p.file_name().unwrap().to_string_lossy().into_owned(), std::fs::read(&p).unwrap()))
+        .collect();
+    tables.sort();
+    tables
+}
+
+// Issue 6: a run killed with SIGKILL in the middle of a stage resumes and
+// gives tables byte-identical to an uninterrupted run.
+#[test]
+fn run_killed_mid_stage_resumes_to_identical_tables() {
+    use std::os::unix::process::CommandExt;
+    let dir = tempfile::tempdir().unwrap();
+    let simulated = write_recording(&Scenario::sparse_grid(40.0, 8), &dir.path().join("rec")).unwrap();
+    let clean = dir.path().join("clean");
+    assert_success(&run(&simulated.description, &clean, None));
+
+    let out = dir.path().join("killed");
+    let mut child = Command::new(spikeyard_binary())
+        .args(["run", "--recording", simulated.description.to_str().unwrap(), "--out", out.to_str().unwrap()])
+        .stderr(std::process::Stdio::null())
+        .process_group(0)
+        .spawn()
+        .unwrap();
+    // Wait until the filter stage has started writing, then kill the whole group.
+    let partial = out.join("stages/.filter.partial/filtered.bin");
+    let started = std::time::Instant::now();
+    while !partial.exists() && started.elapsed() < std::time::Duration::from_secs(60) {
+        std::thread::sleep(std::time::Duration::from_millis(5));
+    }
+    assert!(partial.exists(), "the filter never started");
+    std::thread::sleep(std::time::Duration::from_millis(200));
+    // SAFETY: plain kill(2) on the process group we just created.
+    unsafe { libc::kill(-(child.id() as i32), libc::SIGKILL) };
+    let status = child.wait().unwrap();
+    assert!(!status.success());
+    assert!(!out.join("run.json").exists(), "a killed run must not look complete");
+    assert!(!out.join("stages/filter").exists(), "no half-written stage under its final name");
+
+    assert_success(&run(&simulated.description, &out, None));
+    let resumed = published_tables(&out);
+    assert_eq!(
+        resumed.iter().map(|t| &t.0).collect::<Vec<_>>(),
+        published_tables(&clean).iter().map(|t| &t.0).collect::<Vec<_>>()
+    );
+    for ((name, a), (_, b)) in resumed.iter().zip(published_tables(&clean)) {
+        assert!(*a == b, "{name} differs after resuming");
+    }
+}
+
+#[test]
+fn check_describes_the_recording_and_finds_bad_channels() {
+    let dir = tempfile::tempdir().unwrap();
+    let simulated = write_recording(&Scenario::sparse_grid(4.0, 2), &dir.path().join("rec")).unwrap();
+    let output = spikeyard(&["check", simulated.description.to_str().unwrap()]);
+    assert_success(&output);
+    let text = String::from_utf8_lossy(&output.stdout);
+    assert!(text.contains("64") && text.contains("80000 frames at 20000 Hz"), "{text}");
+    assert!(text.contains("pitch 200.0 µm"), "{text}");
+    assert!(text.contains("dead        1 channel(s) [7]") && text.contains("noisy       1 channel(s) [42]"), "{text}");
+
+    // Clipping: a recording whose stored values sit at the i16 limits.
+    let clip = dir.path().join("clip");
+    std::fs::create_dir_all(&clip).unwrap();
+    let description = write_valid(&clip);
+    let values: Vec<u8> =
+        (0..8000u32).flat_map(|i| if i % 10 == 0 { i16::MAX } else { (i % 50) as i16 }.to_le_bytes()).collect();
+    std::fs::write(clip.join("array.bin"), values).unwrap();
+    let report = spikeyard::commands::check(&description).unwrap();
+    assert!((report.clipped_fraction - 0.1).abs() < 1e-12, "{}", report.text);
+    let refused = spikeyard(&["check", clip.join("missing.toml").to_str().unwrap()]);
+    assert_eq!(refused.status.code(), Some(2));
 }

@@ -287,3 +287,118 @@ pub fn read_small_units(path: &Path) -> anyhow::Result<Vec<i64>> {
     }
     Ok(small)
 }
+
+/// What `spikeyard check` found in a recording.
+#[derive(Debug, Clone)]
+pub struct CheckReport {
+    pub text: String,
+    pub clipped_fraction: f64,
+    pub non_finite: u64,
+    pub dead_channels: Vec<usize>,
+    pub noisy_channels: Vec<usize>,
+}
+
+/// `spikeyard check`: validate a recording without running the pipeline,
+/// read it once, and describe it.
+///
+/// # Errors
+/// The description is refused (as by `spikeyard run`) or reading fails.
+pub fn check(description: &Path) -> anyhow::Result<CheckReport> {
+    let mut recording = Recording::open(description)?;
+    let electrodes = &recording.electrodes;
+    let extent = |f: fn(&spikeyard_contract::Electrode) -> f64| {
+        electrodes.iter().map(f).fold((f64::INFINITY, f64::NEG_INFINITY), |(lo, hi), v| (lo.min(v), hi.max(v)))
+    };
+    let ((x0, x1), (y0, y1)) = (extent(|e| e.x_um), extent(|e| e.y_um));
+    let mut nearest: Vec<f32> = electrodes
+        .iter()
+        .filter_map(|a| {
+            electrodes
+                .iter()
+                .filter(|b| b.channel != a.channel)
+                .map(|b| (a.x_um - b.x_um).hypot(a.y_um - b.y_um))
+                .min_by(f64::total_cmp)
+        })
+        .map(|d| d as f32)
+        .collect();
+    let pitch = spikeyard_contract::noise::median_in_place(&mut nearest);
+
+    // One pass over the stored numbers: range used, clipping, non-finite values.
+    let (type_min, type_max) = match recording.dtype {
+        spikeyard_contract::Dtype::I16 => (i16::MIN as f64, i16::MAX as f64),
+        spikeyard_contract::Dtype::U16 => (0.0, u16::MAX as f64),
+        spikeyard_contract::Dtype::I32 => (i32::MIN as f64, i32::MAX as f64),
+        _ => (f64::NEG_INFINITY, f64::INFINITY),
+    };
+    let (mut low, mut high, mut clipped, mut non_finite) = (f64::INFINITY, f64::NEG_INFINITY, 0u64, 0u64);
+    let mut stored = Vec::new();
+    for chunk in recording.chunks(recording.sample_rate_hz.max(1.0) as usize, 0) {
+        recording.read_stored(chunk.core_start, chunk.core_end, &mut stored)?;
+        for &v in &stored {
+            if !v.is_finite() {
+                non_finite += 1;
+                continue;
+            }
+            low = low.min(v);
+            high = high.max(v);
+            clipped += u64::from(v <= type_min || v >= type_max);
+        }
+    }
+    let total = recording.n_frames as f64 * recording.n_channels as f64;
+    let clipped_fraction = clipped as f64 / total;
+
+    // Channel QC as the default filter stage measures it.
+    recording.non_finite = spikeyard_contract::recording::NonFinite::Zero;
+    let params = spikeyard_filter::params::FilterParams::default()
+        .check(recording.sample_rate_hz)
+        .map_err(anyhow::Error::msg)?;
+    let engine = spikeyard_filter::kernel::FilterEngine::new(&params, recording.sample_rate_hz);
+    let qc = spikeyard_filter::measure_qc(&engine, &recording, &params)?;
+    use spikeyard_filter::qc::ChannelStatus;
+    let with_status = |status: ChannelStatus| -> Vec<usize> {
+        (0..recording.n_channels).filter(|&c| qc.status[c] == status).collect()
+    };
+    let (dead_channels, noisy_channels) = (with_status(ChannelStatus::Dead), with_status(ChannelStatus::Noisy));
+    let mut noise: Vec<f32> = qc.noise_mad_uv.iter().map(|&v| v as f32).collect();
+    let median_noise = spikeyard_contract::noise::median_in_place(&mut noise);
+
+    let mut text = String::new();
+    text.push_str(&format!("recording   {}\n", recording.description_path.display()));
+    text.push_str(&format!(
+        "data        {} ({}, {})\n",
+        recording.data_path.display(),
+        recording.dtype.name(),
+        recording.layout.name()
+    ));
+    text.push_str(&format!(
+        "duration    {:.3} s = {} frames at {} Hz\n",
+        recording.duration_s(),
+        recording.n_frames,
+        recording.sample_rate_hz
+    ));
+    text.push_str(&format!("channels    {}\n", recording.n_channels));
+    text.push_str(&format!(
+        "geometry    x {x0}..{x1} µm, y {y0}..{y1} µm, median nearest-electrode pitch {pitch:.1} µm\n"
+    ));
+    text.push_str(&format!(
+        "stored      values {low}..{high} ({:.1} .. {:.1} µV); dtype range {type_min}..{type_max}\n",
+        (low - recording.offset) * recording.microvolts_per_unit,
+        (high - recording.offset) * recording.microvolts_per_unit
+    ));
+    text.push_str(&format!(
+        "clipped     {clipped} samples at the dtype's limits ({:.4} %)\n",
+        100.0 * clipped_fraction
+    ));
+    if non_finite > 0 {
+        text.push_str(&format!(
+            "non-finite  {non_finite} NaN or infinite samples (refused unless filter.non_finite = \"zero\")\n"
+        ));
+    }
+    text.push_str(&format!(
+        "noise       median {median_noise:.2} µV (MAD, band-passed {}–{} Hz)\n",
+        params.low_hz, params.high_hz
+    ));
+    text.push_str(&format!("dead        {} channel(s) {:?}\n", dead_channels.len(), dead_channels));
+    text.push_str(&format!("noisy       {} channel(s) {:?}\n", noisy_channels.len(), noisy_channels));
+    Ok(CheckReport { text, clipped_fraction, non_finite, dead_channels, noisy_channels })
+}

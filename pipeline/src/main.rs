@@ -52,6 +52,11 @@ enum Command {
         #[arg(long, default_value_t = 60.0)]
         duration_s: f64,
     },
+    /// Validate a recording without running the pipeline and describe it.
+    Check {
+        /// Recording description (TOML).
+        recording: PathBuf,
+    },
     /// Score a sorting against ground truth (one-to-one spike matching).
     Compare {
         /// A results folder (its spikes.parquet) or a spikes table.
@@ -87,6 +92,7 @@ fn main() -> ExitCode {
         Command::Compare { sorting, truth, window_ms, out } => {
             commands::compare(&sorting, &truth, window_ms, out.as_deref()).map(|c| print!("{}", c.describe()))
         }
+        Command::Check { recording } => commands::check(&recording).map(|report| print!("{}", report.text)),
         Command::Stages => {
             print!("{}", commands::list_stages());
             Ok(())

@@ -26,6 +26,8 @@ pub enum RecordingError {
     PartialFrame { path: PathBuf, bytes: u64, frame_bytes: u64, channels: usize, dtype: &'static str },
     #[error("{path}: the data file is empty (0 frames)")]
     EmptyData { path: PathBuf },
+    #[error("{path}: frame {frame}, channel {channel} holds {value}; set the filter stage's non_finite = \"zero\" to replace such samples by 0")]
+    NonFinite { path: PathBuf, frame: u64, channel: usize, value: String },
     #[error("{path}: line {line}: {message}")]
     ElectrodeTable { path: PathBuf, line: usize, message: String },
     #[error("{path}: channel {channel} has no position (the table lists {listed} of {channels} channels)")]

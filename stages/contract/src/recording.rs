@@ -14,6 +14,9 @@ use serde::Deserialize;
 use std::fs::File;
 use std::path::{Path, PathBuf};
 
+/// The most channels a description may declare (far above any array built).
+pub const MAX_CHANNELS: usize = 1 << 20;
+
 /// Sample types a data file may hold (little-endian).
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum Dtype {
@@ -78,6 +81,16 @@ pub enum Layout {
     ChannelMajor,
 }
 
+impl Layout {
+    /// The name a description uses.
+    pub fn name(self) -> &'static str {
+        match self {
+            Layout::TimeMajor => "time-major",
+            Layout::ChannelMajor => "channel-major",
+        }
+    }
+}
+
 /// One electrode: the stored channel it records and where it sits.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Electrode {
@@ -128,6 +141,9 @@ pub struct Recording {
     pub n_frames: u64,
     /// One per channel, indexed by channel.
     pub electrodes: Vec<Electrode>,
+    /// What reading does with NaN or ±Inf in float data.
+    pub non_finite: NonFinite,
+    masked_samples: std::sync::Arc<std::sync::atomic::AtomicU64>,
 }
 
 /// A piece of the recording to process: the core frames the caller is
@@ -173,8 +189,8 @@ impl Recording {
         if !(raw.sample_rate_hz.is_finite() && raw.sample_rate_hz > 0.0) {
             return Err(bad("sample_rate_hz", raw.sample_rate_hz.to_string(), "greater than 0"));
         }
-        if raw.channels <= 0 {
-            return Err(bad("channels", raw.channels.to_string(), "at least 1"));
+        if !(1..=MAX_CHANNELS as i64).contains(&raw.channels) {
+            return Err(bad("channels", raw.channels.to_string(), &format!("1 to {MAX_CHANNELS}")));
         }
         let n_channels = raw.channels as usize;
         let dtype = Dtype::parse(&raw.dtype).ok_or_else(|| {
@@ -228,6 +244,8 @@ impl Recording {
             offset: raw.offset,
             n_frames: bytes / frame_bytes,
             electrodes,
+            non_finite: NonFinite::Refuse,
+            masked_samples: Default::default(),
         })
     }
 
@@ -266,10 +284,72 @@ impl Recording {
     /// Read frames `start..end` as microvolts into `out`, time-major
     /// (`out[frame * n_channels + channel]`). `out` is resized to fit.
     ///
+    /// NaN and ±Inf in float data are refused, or replaced by 0 µV (and
+    /// counted in [`Recording::masked_samples`]) when
+    /// [`Recording::non_finite`] says so.
+    ///
     /// # Errors
-    /// I/O errors mapping the data file, with its path. A range past the end
-    /// of the recording is refused with the same kind of error.
+    /// I/O errors mapping the data file, with its path; a range past the end
+    /// of the recording; a non-finite sample under [`NonFinite::Refuse`].
     pub fn read_frames(&self, start: u64, end: u64, out: &mut Vec<f32>) -> Result<(), RecordingError> {
+        let (gain, offset) = (self.microvolts_per_unit, self.offset);
+        out.clear();
+        out.resize(((end.saturating_sub(start)) as usize).saturating_mul(self.n_channels), 0.0);
+        if self.dtype == Dtype::F32 && gain == 1.0 && offset == 0.0 && self.layout == Layout::TimeMajor {
+            // The common case of an already-scaled f32 file (the filter
+            // stage's own output): a straight copy.
+            self.visit_stored(start, end, |index, bytes| {
+                out[index] = f32::from_le_bytes([bytes[0], bytes[1], bytes[2], bytes[3]])
+            })?;
+        } else {
+            let dtype = self.dtype;
+            self.visit_stored(start, end, |index, bytes| out[index] = ((dtype.decode(bytes) - offset) * gain) as f32)?;
+        }
+        if matches!(self.dtype, Dtype::F32 | Dtype::F64) {
+            self.check_finite(start, out)?;
+        }
+        Ok(())
+    }
+
+    /// Read frames `start..end` as the stored numbers (no gain, no offset),
+    /// time-major, for checks of the stored range.
+    ///
+    /// # Errors
+    /// As [`Recording::read_frames`], without the non-finite check.
+    pub fn read_stored(&self, start: u64, end: u64, out: &mut Vec<f64>) -> Result<(), RecordingError> {
+        out.clear();
+        out.resize(((end.saturating_sub(start)) as usize).saturating_mul(self.n_channels), 0.0);
+        let dtype = self.dtype;
+        self.visit_stored(start, end, |index, bytes| out[index] = dtype.decode(bytes))
+    }
+
+    fn check_finite(&self, start: u64, values: &mut [f32]) -> Result<(), RecordingError> {
+        let mut masked = 0u64;
+        for (index, value) in values.iter_mut().enumerate() {
+            if !value.is_finite() {
+                match self.non_finite {
+                    NonFinite::Refuse => {
+                        return Err(RecordingError::NonFinite {
+                            path: self.data_path.clone(),
+                            frame: start + (index / self.n_channels) as u64,
+                            channel: index % self.n_channels,
+                            value: value.to_string(),
+                        })
+                    }
+                    NonFinite::Zero => {
+                        *value = 0.0;
+                        masked += 1;
+                    }
+                }
+            }
+        }
+        self.masked_samples.fetch_add(masked, std::sync::atomic::Ordering::Relaxed);
+        Ok(())
+    }
+
+    /// Call `put(index, bytes)` for every stored value of frames
+    /// `start..end`, where `index` is its time-major position.
+    fn visit_stored(&self, start: u64, end: u64, mut put: impl FnMut(usize, &[u8])) -> Result<(), RecordingError> {
         let io = |source: std::io::Error| RecordingError::Io { path: self.data_path.clone(), source };
         if start > end || end > self.n_frames {
             return Err(io(std::io::Error::new(
@@ -279,31 +359,17 @@ impl Recording {
         }
         let n_frames = (end - start) as usize;
         let n_channels = self.n_channels;
-        out.clear();
-        out.resize(n_frames * n_channels, 0.0);
         if n_frames == 0 {
             return Ok(());
         }
         let file = File::open(&self.data_path).map_err(io)?;
         let item = self.dtype.bytes();
-        let gain = self.microvolts_per_unit;
-        let offset = self.offset;
-        let dtype = self.dtype;
-        let convert = |bytes: &[u8]| ((dtype.decode(bytes) - offset) * gain) as f32;
         match self.layout {
             Layout::TimeMajor => {
                 let frame_bytes = n_channels * item;
                 let map = map_range(&file, start * frame_bytes as u64, n_frames * frame_bytes).map_err(io)?;
-                if dtype == Dtype::F32 && gain == 1.0 && offset == 0.0 {
-                    // The common case of an already-scaled f32 file (the filter
-                    // stage's own output): a straight copy.
-                    for (value, bytes) in out.iter_mut().zip(map.chunks_exact(4)) {
-                        *value = f32::from_le_bytes([bytes[0], bytes[1], bytes[2], bytes[3]]);
-                    }
-                } else {
-                    for (value, bytes) in out.iter_mut().zip(map.chunks_exact(item)) {
-                        *value = convert(bytes);
-                    }
+                for (index, bytes) in map.chunks_exact(item).enumerate() {
+                    put(index, bytes);
                 }
             }
             Layout::ChannelMajor => {
@@ -312,13 +378,29 @@ impl Recording {
                     let map = map_range(&file, channel as u64 * channel_bytes + start * item as u64, n_frames * item)
                         .map_err(io)?;
                     for (frame, bytes) in map.chunks_exact(item).enumerate() {
-                        out[frame * n_channels + channel] = convert(bytes);
+                        put(frame * n_channels + channel, bytes);
                     }
                 }
             }
         }
         Ok(())
     }
+
+    /// Samples replaced by 0 under [`NonFinite::Zero`] so far.
+    pub fn masked_samples(&self) -> u64 {
+        self.masked_samples.load(std::sync::atomic::Ordering::Relaxed)
+    }
+}
+
+/// What reading does with NaN or ±Inf in float data.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, serde::Serialize, Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum NonFinite {
+    /// Stop with an error naming the frame and channel (the default).
+    #[default]
+    Refuse,
+    /// Replace by 0 µV and count them.
+    Zero,
 }
 
 /// Split `0..n_frames` into chunks; see [`Recording::chunks`].

@@ -238,8 +238,9 @@ fn reference_groups(recording: &Recording, by_group: bool) -> Vec<usize> {
 /// Bad recording or parameters ([`StageFailure::bad_input`]) or I/O
 /// failures while writing.
 pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
-    let recording = Recording::open(&request.recording).map_err(StageFailure::bad_input)?;
+    let mut recording = Recording::open(&request.recording).map_err(StageFailure::bad_input)?;
     let params: FilterParams = request.params().map_err(StageFailure::bad_input)?;
+    recording.non_finite = params.non_finite;
     let valid = params.check(recording.sample_rate_hz).map_err(|message| {
         StageFailure::bad_input(ContractError::Param {
             path: request.path.clone(),
@@ -254,7 +255,10 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     let engine = FilterEngine::new(&valid, recording.sample_rate_hz);
     let output = |e: std::io::Error, name: &str| StageFailure::failed(ContractError::io(request.output(name), e));
 
-    let qc = measure_qc(&engine, &recording, &valid).map_err(StageFailure::failed)?;
+    let qc = measure_qc(&engine, &recording, &valid).map_err(|e| match e {
+        RecordingError::NonFinite { .. } => StageFailure::bad_input(e),
+        other => StageFailure::failed(other),
+    })?;
     let usable: Vec<bool> = qc.status.iter().map(|s| *s == ChannelStatus::Ok).collect();
     let n_usable = usable.iter().filter(|u| **u).count();
     if n_usable == 0 {
@@ -273,8 +277,12 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
             .map_err(|e| output(e, "filtered.bin"))?;
     let mut progress = ProgressReporter::new(recording.n_frames, "frames");
     let (mut raw, mut filtered) = (Vec::new(), Vec::new());
+    let masked_before = recording.masked_samples();
     for chunk in &chunks {
-        filter_chunk(&engine, &recording, chunk, &mut raw, &mut filtered).map_err(StageFailure::failed)?;
+        filter_chunk(&engine, &recording, chunk, &mut raw, &mut filtered).map_err(|e| match e {
+            RecordingError::NonFinite { .. } => StageFailure::bad_input(e),
+            other => StageFailure::failed(other),
+        })?;
         if valid.reference == Reference::Median && n_usable > 0 {
             let n_channels = recording.n_channels;
             filtered
@@ -285,6 +293,13 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
         progress.advance(chunk.core_frames() as u64);
     }
     writer.finish().map_err(|e| output(e, FILTERED_RECORDING))?;
+    // Chunks overlap by their margins, so a masked sample may be counted twice.
+    let masked = recording.masked_samples() - masked_before;
+    if masked > 0 {
+        report.warn(format!(
+            "{masked} NaN or infinite samples were replaced by 0 µV (counted once per read; margins overlap)"
+        ));
+    }
 
     let mut sorted_noise: Vec<f32> = qc.noise_mad_uv.iter().map(|&v| v as f32).collect();
     let count = |status: ChannelStatus| qc.status.iter().filter(|s| **s == status).count();

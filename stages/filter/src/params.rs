@@ -57,6 +57,9 @@ pub struct FilterParams {
     pub dead_below_ratio: f64,
     /// A channel whose noise is above this multiple of the array median is noisy. Default 3.
     pub noisy_above_ratio: f64,
+    /// NaN or ±Inf in float recordings: "refuse" (stop with the frame and
+    /// channel, default) or "zero" (replace by 0 µV, counted in the report).
+    pub non_finite: spikeyard_contract::recording::NonFinite,
 }
 
 impl Default for FilterParams {
@@ -76,6 +79,7 @@ impl Default for FilterParams {
             line_hz: 50.0,
             dead_below_ratio: 0.2,
             noisy_above_ratio: 3.0,
+            non_finite: spikeyard_contract::recording::NonFinite::Refuse,
         }
     }
 }
