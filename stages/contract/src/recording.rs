@@ -748,3 +748,40 @@ mod layout_tests {
         assert!(message.contains("d.bin") && message.contains("has 2 frames"), "{message}");
     }
 }
+
+/// Transpose time-major frames (`frames[frame * n_channels + channel]`)
+/// into channel-major columns (`out[channel * n_frames + frame]`), tile by
+/// tile so that both sides stay in cache. One pass, instead of one strided
+/// pass per channel.
+pub fn to_channel_major(frames: &[f32], n_channels: usize, out: &mut Vec<f32>) {
+    const TILE: usize = 64;
+    let n_frames = frames.len() / n_channels.max(1);
+    out.clear();
+    out.resize(n_frames * n_channels, 0.0);
+    for frame0 in (0..n_frames).step_by(TILE) {
+        let frame1 = (frame0 + TILE).min(n_frames);
+        for channel0 in (0..n_channels).step_by(TILE) {
+            let channel1 = (channel0 + TILE).min(n_channels);
+            for frame in frame0..frame1 {
+                for channel in channel0..channel1 {
+                    out[channel * n_frames + frame] = frames[frame * n_channels + channel];
+                }
+            }
+        }
+    }
+}
+
+#[cfg(test)]
+mod transpose_tests {
+    #[test]
+    fn channel_major_columns_match_strided_reads() {
+        let (n_frames, n_channels) = (130, 70);
+        let frames: Vec<f32> = (0..n_frames * n_channels).map(|i| i as f32).collect();
+        let mut columns = vec![1.0; 5];
+        super::to_channel_major(&frames, n_channels, &mut columns);
+        for channel in 0..n_channels {
+            let strided: Vec<f32> = frames.iter().skip(channel).step_by(n_channels).copied().collect();
+            assert_eq!(&columns[channel * n_frames..(channel + 1) * n_frames], &strided[..]);
+        }
+    }
+}

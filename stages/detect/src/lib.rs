@@ -21,6 +21,7 @@ use arrow_schema::{DataType, Field, Schema, SchemaRef};
 use kernel::{Event, EventMerger};
 use params::{DetectParams, ValidDetectParams};
 use rayon::prelude::*;
+use spikeyard_contract::recording::to_channel_major;
 use spikeyard_contract::table::{column, read_table, write_table, TableWriter};
 use spikeyard_contract::{
     noise, ContractError, ProgressReporter, Recording, RecordingError, StageFailure, StageReport, StageRequest,
@@ -56,14 +57,11 @@ pub fn events_schema() -> SchemaRef {
 pub fn estimate_noise(recording: &Recording, windows: usize, window_frames: usize) -> Result<Vec<f64>, RecordingError> {
     let n_channels = recording.n_channels;
     let mut per_window: Vec<Vec<f32>> = vec![Vec::new(); n_channels];
-    let mut frames = Vec::new();
+    let (mut frames, mut columns) = (Vec::new(), Vec::new());
     for window in recording.spread_windows(windows, window_frames, 0) {
         recording.read_frames(window.core_start, window.core_end, &mut frames)?;
-        let frames: &[f32] = &frames;
-        let sigmas: Vec<f64> = (0..n_channels)
-            .into_par_iter()
-            .map(|c| noise::mad_sigma(&mut frames.iter().skip(c).step_by(n_channels).copied().collect::<Vec<_>>()))
-            .collect();
+        to_channel_major(&frames, n_channels, &mut columns);
+        let sigmas: Vec<f64> = columns.par_chunks_mut(window.core_frames()).map(noise::mad_sigma).collect();
         for (list, sigma) in per_window.iter_mut().zip(sigmas) {
             list.push(sigma as f32);
         }
@@ -126,14 +124,16 @@ pub fn detect<E: From<RecordingError>>(
         vec![Vec::new(); n_channels]
     };
     let mut merger = EventMerger::new(neighbours, params.merge_frames);
-    let mut frames = Vec::new();
+    let (mut frames, mut columns) = (Vec::new(), Vec::new());
     let mut kept = Vec::new();
     // One frame before the core (for the first comparison) and the peak search after it.
     for chunk in recording.chunks(params.chunk_frames, params.peak_frames + 1) {
         recording.read_frames(chunk.read_start, chunk.read_end, &mut frames)?;
         let core_offset = (chunk.core_start - chunk.read_start) as usize;
         let core = core_offset..core_offset + chunk.core_frames();
-        let frames: &[f32] = &frames;
+        to_channel_major(&frames, n_channels, &mut columns);
+        let columns: &[f32] = &columns;
+        let read_frames = chunk.read_frames();
         let found: Vec<(Vec<Event>, Option<u64>)> = last_crossing
             .par_iter()
             .enumerate()
@@ -141,9 +141,9 @@ pub fn detect<E: From<RecordingError>>(
                 let mut events = Vec::new();
                 let mut last = last;
                 if usable[channel] && thresholds[channel] > 0.0 {
-                    let x: Vec<f32> = frames.iter().skip(channel).step_by(n_channels).copied().collect();
+                    let x = &columns[channel * read_frames..(channel + 1) * read_frames];
                     kernel::find_crossings(
-                        &x,
+                        x,
                         chunk.read_start,
                         core.clone(),
                         thresholds[channel],

@@ -26,7 +26,7 @@ use kernel::{FilterEngine, Scratch};
 use params::{FilterParams, Reference, ValidFilterParams};
 use qc::{ChannelStatus, Welch};
 use rayon::prelude::*;
-use spikeyard_contract::recording::F32RecordingWriter;
+use spikeyard_contract::recording::{to_channel_major, F32RecordingWriter};
 use spikeyard_contract::table::write_table;
 use spikeyard_contract::{
     noise, Chunk, ContractError, ProgressReporter, Recording, RecordingError, StageFailure, StageReport, StageRequest,
@@ -64,21 +64,47 @@ pub fn filter_chunk(
     let pad_after = margin.saturating_sub(chunk.read_end - chunk.core_end) as usize;
     let core_frames = chunk.core_frames();
     let raw: &[f32] = raw;
-    let columns: Vec<Vec<f32>> = (0..n_channels)
-        .into_par_iter()
-        .map_init(
-            || (Scratch::default(), Vec::new()),
-            |(scratch, column), channel| {
-                column.clear();
-                column.extend(raw.iter().skip(channel).step_by(n_channels));
-                let mut filtered = vec![0.0f32; core_frames];
-                engine.filter_channel(column, pad_before, pad_after, core_offset, &mut filtered, scratch);
-                filtered
-            },
-        )
-        .collect();
     out.clear();
     out.resize(core_frames * n_channels, 0.0);
+    if engine.supports_blocks() {
+        let blocks: Vec<(usize, usize, Vec<f32>)> = (0..n_channels.div_ceil(kernel::BLOCK_LANES))
+            .into_par_iter()
+            .map_init(Vec::new, |buffer, block| {
+                let first = block * kernel::BLOCK_LANES;
+                let lanes = kernel::BLOCK_LANES.min(n_channels - first);
+                let mut filtered = vec![0.0f32; core_frames * lanes];
+                engine.filter_block(
+                    raw,
+                    n_channels,
+                    first,
+                    lanes,
+                    pad_before,
+                    pad_after,
+                    core_offset,
+                    &mut filtered,
+                    buffer,
+                );
+                (first, lanes, filtered)
+            })
+            .collect();
+        for (first, lanes, filtered) in blocks {
+            for (frame, values) in filtered.chunks_exact(lanes).enumerate() {
+                out[frame * n_channels + first..frame * n_channels + first + lanes].copy_from_slice(values);
+            }
+        }
+        return Ok(());
+    }
+    let mut by_channel = Vec::new();
+    to_channel_major(raw, n_channels, &mut by_channel);
+    let read_frames = chunk.read_frames();
+    let columns: Vec<Vec<f32>> = by_channel
+        .par_chunks(read_frames)
+        .map_init(Scratch::default, |scratch, column| {
+            let mut filtered = vec![0.0f32; core_frames];
+            engine.filter_channel(column, pad_before, pad_after, core_offset, &mut filtered, scratch);
+            filtered
+        })
+        .collect();
     for (channel, column) in columns.iter().enumerate() {
         for (frame, v) in column.iter().enumerate() {
             out[frame * n_channels + channel] = *v;
@@ -119,20 +145,21 @@ pub fn measure_qc(
     let mut psd_sums = vec![vec![0.0f64; welch.n_bins()]; n_channels];
     let mut segments = vec![0usize; n_channels];
     let (mut raw, mut filtered) = (Vec::new(), Vec::new());
+    let (mut filtered_columns, mut raw_columns) = (Vec::new(), Vec::new());
     for window in &windows {
         filter_chunk(engine, recording, window, &mut raw, &mut filtered)?;
         let core_offset = (window.core_start - window.read_start) as usize * n_channels;
         let raw_core = &raw[core_offset..core_offset + window.core_frames() * n_channels];
-        let filtered: &[f32] = &filtered;
-        let per_channel: Vec<(f64, f64, Vec<f64>, usize)> = (0..n_channels)
-            .into_par_iter()
-            .map(|channel| {
-                let mut column: Vec<f32> = filtered.iter().skip(channel).step_by(n_channels).copied().collect();
+        to_channel_major(&filtered, n_channels, &mut filtered_columns);
+        to_channel_major(raw_core, n_channels, &mut raw_columns);
+        let per_channel: Vec<(f64, f64, Vec<f64>, usize)> = filtered_columns
+            .par_chunks_mut(window_frames)
+            .zip(raw_columns.par_chunks(window_frames))
+            .map(|(column, raw_column)| {
                 let squares: f64 = column.iter().map(|&v| (v as f64) * (v as f64)).sum();
-                let sigma = noise::mad_sigma(&mut column);
-                let raw_column: Vec<f32> = raw_core.iter().skip(channel).step_by(n_channels).copied().collect();
+                let sigma = noise::mad_sigma(column);
                 let mut psd = vec![0.0; welch.n_bins()];
-                let count = welch.accumulate(&raw_column, &mut psd, &mut Vec::new());
+                let count = welch.accumulate(raw_column, &mut psd, &mut Vec::new());
                 (sigma, squares, psd, count)
             })
             .collect();
