@@ -4,6 +4,7 @@
 //! Stage executables are found next to the `spikeyard` binary under test,
 //! so run these with `cargo test --release --workspace`, which builds them all.
 
+use arrow_array::Array;
 use spikeyard::commands::score_run;
 use spikeyard::simulate::{write_recording, Scenario};
 use spikeyard_contract::table::{column, read_table};
@@ -12,7 +13,9 @@ use std::process::{Command, Output};
 
 fn spikeyard_binary() -> PathBuf {
     let binary = PathBuf::from(env!("CARGO_BIN_EXE_spikeyard"));
-    for stage in ["spikeyard-filter", "spikeyard-detect", "spikeyard-features", "spikeyard-cluster"] {
+    for stage in
+        ["spikeyard-filter", "spikeyard-detect", "spikeyard-features", "spikeyard-cluster", "spikeyard-measures"]
+    {
         assert!(
             binary.with_file_name(stage).exists(),
             "{stage} is not built next to {}; run the tests with `cargo test --release --workspace`",
@@ -108,6 +111,37 @@ fn detection_on_the_default_scenario_finds_every_unit_above_five_sigma() {
         comparison.sorted_best_accuracy.iter().filter(|(u, &a)| !small.contains(u) && a < 0.5).collect();
     assert!(unmatched.len() <= 1, "unmatched sorted units {unmatched:?}\n{}", comparison.describe());
     eprintln!("{}", comparison.describe());
+
+    // Issue 4 (measures): the well-isolated units of the default scenario
+    // have high SNR, few refractory violations, full presence and a small
+    // L-ratio; firing_rates.parquet covers every unit and second.
+    let units_path = out.join("units.parquet");
+    let units = &read_table(&units_path).unwrap()[0];
+    let f64s = |name: &str| column::<arrow_array::Float64Array>(&units_path, units, name).unwrap().clone();
+    let (snr, contamination, presence, low, high, rate) = (
+        f64s("snr"),
+        f64s("contamination"),
+        f64s("presence_ratio"),
+        f64s("firing_rate_ci_low_hz"),
+        f64s("firing_rate_ci_high_hz"),
+        f64s("firing_rate_hz"),
+    );
+    let l_ratio = f64s("l_ratio");
+    for m in comparison.truth.iter().filter(|m| m.accuracy() >= 0.8) {
+        let u = m.sorted_unit.unwrap() as usize;
+        assert!(snr.value(u) >= 5.0, "unit {u}: snr {}", snr.value(u));
+        assert!(contamination.value(u) < 0.1, "unit {u}: contamination {}", contamination.value(u));
+        assert!(presence.value(u) == 1.0, "unit {u}");
+        assert!(low.value(u) < rate.value(u) && rate.value(u) < high.value(u));
+        assert!(
+            l_ratio.is_valid(u) && l_ratio.value(u) < 0.1,
+            "unit {u}: L-ratio {:?}",
+            l_ratio.is_valid(u).then(|| l_ratio.value(u))
+        );
+    }
+    let rates_path = out.join("firing_rates.parquet");
+    let rows: usize = read_table(&rates_path).unwrap().iter().map(|b| b.num_rows()).sum();
+    assert_eq!(rows, units.num_rows() * 30);
 }
 
 #[test]
@@ -148,7 +182,7 @@ fn cache_reruns_exactly_the_changed_stage_and_what_follows() {
     let simulated = write_recording(&Scenario::sparse_grid(4.0, 3), &dir.path().join("rec")).unwrap();
     let out = dir.path().join("out");
     assert_success(&run(&simulated.description, &out, None));
-    assert_eq!(stages_run(&out), ["filter", "detect", "features", "cluster"]);
+    assert_eq!(stages_run(&out), ["filter", "detect", "features", "cluster", "measures"]);
     let events_before = std::fs::read(out.join("events.parquet")).unwrap();
 
     let second = run(&simulated.description, &out, None);
@@ -160,7 +194,7 @@ fn cache_reruns_exactly_the_changed_stage_and_what_follows() {
     let config = dir.path().join("order4.toml");
     std::fs::write(&config, default_config_with("order = 3", "order = 4")).unwrap();
     assert_success(&run(&simulated.description, &out, Some(&config)));
-    assert_eq!(stages_run(&out), ["filter", "detect", "features", "cluster"]);
+    assert_eq!(stages_run(&out), ["filter", "detect", "features", "cluster", "measures"]);
 
     let config = dir.path().join("threshold.toml");
     std::fs::write(
@@ -169,7 +203,7 @@ fn cache_reruns_exactly_the_changed_stage_and_what_follows() {
     )
     .unwrap();
     assert_success(&run(&simulated.description, &out, Some(&config)));
-    assert_eq!(stages_run(&out), ["detect", "features", "cluster"]);
+    assert_eq!(stages_run(&out), ["detect", "features", "cluster", "measures"]);
 
     // The manifest records what went in and what came out.
     let manifest: serde_json::Value =
@@ -189,7 +223,7 @@ fn cache_reruns_exactly_the_changed_stage_and_what_follows() {
     bytes[1001] ^= 0x40;
     std::fs::write(&data, bytes).unwrap();
     assert_success(&run(&simulated.description, &out, Some(&config)));
-    assert_eq!(stages_run(&out), ["filter", "detect", "features", "cluster"]);
+    assert_eq!(stages_run(&out), ["filter", "detect", "features", "cluster", "measures"]);
 }
 
 // STYLE.md §5 and the brief: the same inputs give the same tables whatever the thread count.

@@ -158,7 +158,7 @@ mod tests {
     fn default_config_parses_with_filter_then_detect() {
         let config = PipelineConfig::load(None).unwrap();
         let names: Vec<_> = config.stages.iter().map(|s| s.name.as_str()).collect();
-        assert_eq!(names, vec!["filter", "detect", "features", "cluster"]);
+        assert_eq!(names, vec!["filter", "detect", "features", "cluster", "measures"]);
     }
 
     // The default config file must say exactly what the stages' defaults are.
@@ -177,6 +177,9 @@ mod tests {
         let cluster: spikeyard_cluster::params::ClusterParams =
             serde_json::from_value(config.stages[3].params.clone()).unwrap();
         assert_eq!(cluster, spikeyard_cluster::params::ClusterParams::default());
+        let measures: spikeyard_measures::params::MeasuresParams =
+            serde_json::from_value(config.stages[4].params.clone()).unwrap();
+        assert_eq!(measures, spikeyard_measures::params::MeasuresParams::default());
         assert_eq!(config.run, RunSettings::default());
         // And it lists every parameter, so the file documents them all.
         let listed = |i: usize| config.stages[i].params.as_object().unwrap().len();
@@ -188,6 +191,10 @@ mod tests {
             all(serde_json::to_value(spikeyard_features::params::FeaturesParams::default()).unwrap())
         );
         assert_eq!(listed(3), all(serde_json::to_value(spikeyard_cluster::params::ClusterParams::default()).unwrap()));
+        assert_eq!(
+            listed(4),
+            all(serde_json::to_value(spikeyard_measures::params::MeasuresParams::default()).unwrap())
+        );
     }
 
     #[test]

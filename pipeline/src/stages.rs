@@ -58,6 +58,14 @@ pub const BUILTIN_STAGES: &[BuiltinStage] = &[
             p.check(rate).map(|_| Vec::new()).map_err(|e| format!("params: {e}"))
         },
     },
+    BuiltinStage {
+        name: "measures",
+        about: "unit quality metrics, firing rates with exact Poisson intervals",
+        check: |params, _rate| {
+            let p: spikeyard_measures::params::MeasuresParams = parse_params(params)?;
+            p.check().map(|_| Vec::new()).map_err(|e| format!("params: {e}"))
+        },
+    },
 ];
 
 pub fn builtin(name: &str) -> Option<&'static BuiltinStage> {

@@ -47,6 +47,7 @@ pub const TEMPLATES_TABLE: &str = "templates.parquet";
 
 /// One batch of the features table, columns borrowed.
 pub struct FeatureBatch<'a> {
+    pub events: &'a Int64Array,
     pub samples: &'a Int64Array,
     pub channels: &'a Int32Array,
     pub amplitudes: &'a Float32Array,
@@ -94,6 +95,7 @@ pub fn for_each_feature_batch(
             })
         })?;
         visit(&FeatureBatch {
+            events: column(path, &batch, "event")?,
             samples: column(path, &batch, "sample")?,
             channels: column(path, &batch, "channel")?,
             amplitudes: column(path, &batch, "amplitude_uv")?,
@@ -191,6 +193,8 @@ fn identity(d: usize) -> Vec<f64> {
 /// One assigned spike.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct Assigned {
+    /// Row of the event in events.parquet.
+    pub event: u64,
     pub sample: u64,
     pub channel: u32,
     pub unit: u32,
@@ -330,6 +334,7 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
                 let channel = channel_of(batch, i)?;
                 let model = models[channel].as_ref().expect("every group with events has a model");
                 Ok(Assigned {
+                    event: batch.events.value(i).max(0) as u64,
                     sample: batch.samples.value(i).max(0) as u64,
                     channel: channel as u32,
                     unit: model.unit_of(batch.row(i)) as u32,
@@ -417,6 +422,7 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
             Field::new("amplitude_uv", DataType::Float32, false),
             Field::new("x_um", DataType::Float32, false),
             Field::new("y_um", DataType::Float32, false),
+            Field::new("event", DataType::Int64, false),
         ])),
         vec![
             Arc::new(Int32Array::from_iter_values(spikes.iter().map(|s| s.unit as i32))) as ArrayRef,
@@ -426,6 +432,7 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
             Arc::new(Float32Array::from_iter_values(spikes.iter().map(|s| s.amplitude_uv))),
             Arc::new(Float32Array::from_iter_values(spikes.iter().map(|s| s.x_um))),
             Arc::new(Float32Array::from_iter_values(spikes.iter().map(|s| s.y_um))),
+            Arc::new(Int64Array::from_iter_values(spikes.iter().map(|s| s.event as i64))),
         ],
     )
     .expect("spike columns match their schema");

@@ -61,43 +61,12 @@ impl Mixture {
 }
 
 fn log_density(component: &Component, x: &[f64]) -> f64 {
-    let d = component.mean.len();
-    // Solve L·z = x − μ; the Mahalanobis distance is |z|².
-    let mut z = vec![0.0; d];
-    for i in 0..d {
-        let mut sum = x[i] - component.mean[i];
-        for j in 0..i {
-            sum -= component.cholesky[i * d + j] * z[j];
-        }
-        z[i] = sum / component.cholesky[i * d + i];
-    }
-    let mahalanobis: f64 = z.iter().map(|v| v * v).sum();
-    -0.5 * (d as f64 * (2.0 * std::f64::consts::PI).ln() + component.log_det + mahalanobis)
+    let d = component.mean.len() as f64;
+    let mahalanobis = spikeyard_contract::linalg::mahalanobis_squared(&component.cholesky, &component.mean, x);
+    -0.5 * (d * (2.0 * std::f64::consts::PI).ln() + component.log_det + mahalanobis)
 }
 
-/// Lower Cholesky factor of a symmetric positive-definite d×d matrix, and
-/// ln det; `None` when it is not positive definite.
-pub fn cholesky(matrix: &[f64], d: usize) -> Option<(Vec<f64>, f64)> {
-    let mut l = vec![0.0; d * d];
-    for i in 0..d {
-        for j in 0..=i {
-            let mut sum = matrix[i * d + j];
-            for k in 0..j {
-                sum -= l[i * d + k] * l[j * d + k];
-            }
-            if i == j {
-                if sum <= 0.0 || !sum.is_finite() {
-                    return None;
-                }
-                l[i * d + i] = sum.sqrt();
-            } else {
-                l[i * d + j] = sum / l[j * d + j];
-            }
-        }
-    }
-    let log_det = 2.0 * (0..d).map(|i| l[i * d + i].ln()).sum::<f64>();
-    Some((l, log_det))
-}
+pub use spikeyard_contract::linalg::cholesky;
 
 fn component(weight: f64, mean: Vec<f64>, covariance: &[f64]) -> Option<Component> {
     let d = mean.len();
@@ -270,15 +239,6 @@ pub fn fit_group(rows: &[Vec<f64>], d: usize, fit: &GroupFit) -> Option<Mixture>
 #[cfg(test)]
 mod tests {
     use super::*;
-
-    #[test]
-    fn cholesky_of_a_known_matrix() {
-        // [[4,2],[2,3]] = L·Lᵀ with L = [[2,0],[1,√2]]; det = 8.
-        let (l, log_det) = cholesky(&[4.0, 2.0, 2.0, 3.0], 2).unwrap();
-        assert!((l[0] - 2.0).abs() < 1e-15 && (l[2] - 1.0).abs() < 1e-15 && (l[3] - 2f64.sqrt()).abs() < 1e-15);
-        assert!((log_det - 8f64.ln()).abs() < 1e-14);
-        assert!(cholesky(&[1.0, 2.0, 2.0, 1.0], 2).is_none());
-    }
 
     #[test]
     fn well_separated_blobs_get_their_own_units() {

@@ -23,6 +23,7 @@
 pub mod error;
 pub mod events;
 pub mod hash;
+pub mod linalg;
 pub mod noise;
 pub mod recording;
 pub mod request;

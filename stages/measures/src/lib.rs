@@ -1,0 +1,386 @@
+//! The measures stage: how much to trust each unit and what it did.
+//!
+//! Data flow of [`run`]:
+//! 1. read the cluster stage's `spikes.parquet`, `units.parquet` and
+//!    `templates.parquet`, the detect stage's `channel_noise.parquet`, and
+//!    the sample rate and length of the recording;
+//! 2. per unit ([`metrics`]): SNR (template trough on the main electrode ÷
+//!    its MAD noise σ; and peak-to-peak ÷ σ), ISI violations and the
+//!    contamination of Hill et al. (2011), presence ratio, the fraction of
+//!    spikes lost below threshold, the mean rate with its exact Poisson
+//!    95 % interval (Garwood 1936, [`stats`]);
+//! 3. isolation distance and L-ratio in the unit's feature space: the
+//!    events of the electrode most of its spikes were detected on, from
+//!    `features.parquet` (a seeded subset per electrode);
+//! 4. `units.parquet` again, with the metric columns added, and
+//!    `firing_rates.parquet` (per unit and time bin, with intervals and an
+//!    optional Gaussian-smoothed rate).
+
+pub mod metrics;
+pub mod params;
+pub mod stats;
+
+use arrow_array::{
+    Array, ArrayRef, FixedSizeListArray, Float32Array, Float64Array, Int32Array, Int64Array, RecordBatch,
+};
+use arrow_schema::{DataType, Field, Schema};
+use params::MeasuresParams;
+use spikeyard_contract::table::{column, read_table, write_table};
+use spikeyard_contract::{ContractError, Recording, StageFailure, StageReport, StageRequest};
+use std::collections::HashMap;
+use std::path::Path;
+use std::sync::Arc;
+
+pub const EXECUTABLE: &str = "spikeyard-measures";
+pub const VERSION: &str = env!("CARGO_PKG_VERSION");
+
+pub const UNITS_TABLE: &str = "units.parquet";
+pub const FIRING_RATES_TABLE: &str = "firing_rates.parquet";
+
+/// One sorted spike as the measures need it.
+#[derive(Debug, Clone, Copy)]
+struct Spike {
+    unit: usize,
+    sample: u64,
+    channel: usize,
+    amplitude_uv: f32,
+    event: u64,
+}
+
+fn read_spikes(path: &Path) -> Result<Vec<Spike>, ContractError> {
+    let mut spikes = Vec::new();
+    for batch in read_table(path)? {
+        let units: &Int32Array = column(path, &batch, "unit_id")?;
+        let samples: &Int64Array = column(path, &batch, "sample")?;
+        let channels: &Int32Array = column(path, &batch, "channel")?;
+        let amplitudes: &Float32Array = column(path, &batch, "amplitude_uv")?;
+        let events: &Int64Array = column(path, &batch, "event")?;
+        for i in 0..batch.num_rows() {
+            spikes.push(Spike {
+                unit: units.value(i).max(0) as usize,
+                sample: samples.value(i).max(0) as u64,
+                channel: channels.value(i).max(0) as usize,
+                amplitude_uv: amplitudes.value(i),
+                event: events.value(i).max(0) as u64,
+            });
+        }
+    }
+    Ok(spikes)
+}
+
+fn f64_column(path: &Path, batch: &RecordBatch, name: &str) -> Result<Vec<f64>, ContractError> {
+    Ok(column::<Float64Array>(path, batch, name)?.values().to_vec())
+}
+
+/// An event's unit (when it is a sorted spike) and its features.
+type FeatureRow = (Option<usize>, Vec<f64>);
+
+/// unit, bin start s, bin s, count, rate, interval low, interval high, smoothed rate.
+type RateRow = (i32, f64, f64, i64, f64, f64, f64, f64);
+
+/// Seeded choice of `index` with probability `p`.
+fn chosen(seed: u64, index: u64, probability: f64) -> bool {
+    let mut z = seed ^ index.wrapping_mul(0x9E37_79B9_7F4A_7C15) ^ 0x1507;
+    z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
+    z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
+    z ^= z >> 31;
+    ((z >> 11) as f64 / (1u64 << 53) as f64) < probability
+}
+
+/// Gaussian-kernel smoothing of a sequence (σ in samples), edges renormalised.
+pub fn smooth(values: &[f64], sigma: f64) -> Vec<f64> {
+    let reach = (4.0 * sigma).ceil() as isize;
+    let kernel: Vec<f64> = (-reach..=reach).map(|k| (-0.5 * (k as f64 / sigma).powi(2)).exp()).collect();
+    (0..values.len() as isize)
+        .map(|i| {
+            let (mut sum, mut weight) = (0.0, 0.0);
+            for (k, w) in (-reach..=reach).zip(&kernel) {
+                if let Some(v) = usize::try_from(i + k).ok().and_then(|j| values.get(j)) {
+                    sum += w * v;
+                    weight += w;
+                }
+            }
+            sum / weight
+        })
+        .collect()
+}
+
+/// Run the stage on a request.
+///
+/// # Errors
+/// Bad input ([`StageFailure::bad_input`]) or failures while working.
+pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
+    let mut report = StageReport::default();
+    let recording_path = request.artifact("filtered.toml").map_or_else(|| request.recording.clone(), Path::to_path_buf);
+    let recording = Recording::open(&recording_path).map_err(StageFailure::bad_input)?;
+    let need = |name: &str| request.require_artifact(name).map(Path::to_path_buf).map_err(StageFailure::bad_input);
+    let (spikes_path, units_path, templates_path, noise_path, features_path) = (
+        need("spikes.parquet")?,
+        need("units.parquet")?,
+        need("templates.parquet")?,
+        need("channel_noise.parquet")?,
+        need("features.parquet")?,
+    );
+    let params: MeasuresParams = request.params().map_err(StageFailure::bad_input)?;
+    params.check().map_err(|message| {
+        StageFailure::bad_input(ContractError::Param {
+            path: request.path.clone(),
+            key: format!("{}.params", request.stage),
+            message,
+        })
+    })?;
+    let fs = recording.sample_rate_hz;
+    let duration_s = recording.duration_s();
+
+    let spikes = read_spikes(&spikes_path)?;
+    let units_batches = read_table(&units_path)?;
+    let units = arrow_select_concat(&units_path, &units_batches)?;
+    let n_units = units.num_rows();
+    let main_channel: Vec<usize> =
+        column::<Int32Array>(&units_path, &units, "channel")?.values().iter().map(|&c| c.max(0) as usize).collect();
+    let unit_ids: Vec<i32> = column::<Int32Array>(&units_path, &units, "unit_id")?.values().to_vec();
+    if unit_ids.iter().enumerate().any(|(i, &u)| u != i as i32) || spikes.iter().any(|s| s.unit >= n_units) {
+        return Err(StageFailure::bad_input(ContractError::Format {
+            path: units_path.clone(),
+            message: "unit_id must number the rows 0, 1, 2, ... and cover every unit in spikes.parquet".into(),
+        }));
+    }
+    let mut noise = Vec::new();
+    let mut threshold = Vec::new();
+    for batch in read_table(&noise_path)? {
+        noise.extend(f64_column(&noise_path, &batch, "noise_uv")?);
+        threshold.extend(f64_column(&noise_path, &batch, "threshold_uv")?);
+    }
+    // Template trough and peak-to-peak on each unit's main electrode.
+    let mut trough = vec![0.0f64; n_units];
+    let mut peak = vec![0.0f64; n_units];
+    for batch in read_table(&templates_path)? {
+        let ids: &Int32Array = column(&templates_path, &batch, "unit_id")?;
+        let channels: &Int32Array = column(&templates_path, &batch, "channel")?;
+        let values: &Float32Array = column(&templates_path, &batch, "value_uv")?;
+        for i in 0..batch.num_rows() {
+            let unit = ids.value(i).max(0) as usize;
+            if unit < n_units && channels.value(i) as usize == main_channel[unit] {
+                trough[unit] = trough[unit].min(values.value(i) as f64);
+                peak[unit] = peak[unit].max(values.value(i) as f64);
+            }
+        }
+    }
+
+    // Per-unit spike trains.
+    let mut trains: Vec<Vec<&Spike>> = vec![Vec::new(); n_units];
+    for spike in &spikes {
+        trains[spike.unit].push(spike);
+    }
+    let refractory_frames = (params.refractory_ms * 1e-3 * fs).round() as u64;
+    let n_presence_bins = ((duration_s / params.presence_bin_s).floor() as usize).max(1);
+    let noise_at = |c: usize| noise.get(c).copied().unwrap_or(f64::NAN);
+
+    // Feature-space metrics: each unit in the neighbourhood of the electrode
+    // most of its spikes were detected on.
+    let feature_channel: Vec<usize> = trains
+        .iter()
+        .map(|train| {
+            let mut counts: HashMap<usize, usize> = HashMap::new();
+            for s in train {
+                *counts.entry(s.channel).or_default() += 1;
+            }
+            counts.into_iter().max_by_key(|&(c, n)| (n, std::cmp::Reverse(c))).map_or(0, |(c, _)| c)
+        })
+        .collect();
+    let unit_of_event: HashMap<u64, usize> = spikes.iter().map(|s| (s.event, s.unit)).collect();
+    let wanted: std::collections::BTreeSet<usize> = feature_channel.iter().copied().collect();
+    let mut group_counts: HashMap<usize, u64> = HashMap::new();
+    let mut rows: HashMap<usize, Vec<FeatureRow>> = HashMap::new();
+    let feature_batches = read_table(&features_path)?;
+    for batch in &feature_batches {
+        let channels: &Int32Array = column(&features_path, batch, "channel")?;
+        for &c in channels.values() {
+            *group_counts.entry(c.max(0) as usize).or_default() += 1;
+        }
+    }
+    for batch in &feature_batches {
+        let events: &Int64Array = column(&features_path, batch, "event")?;
+        let channels: &Int32Array = column(&features_path, batch, "channel")?;
+        let list: &FixedSizeListArray = column(&features_path, batch, "features")?;
+        let width = list.value_length() as usize;
+        let values = list.values().as_any().downcast_ref::<Float32Array>().ok_or_else(|| {
+            StageFailure::bad_input(ContractError::Format {
+                path: features_path.clone(),
+                message: "features are not float32".into(),
+            })
+        })?;
+        for i in 0..batch.num_rows() {
+            let channel = channels.value(i).max(0) as usize;
+            let event = events.value(i).max(0) as u64;
+            let probability = params.isolation_events_per_channel as f64 / group_counts[&channel] as f64;
+            if wanted.contains(&channel) && chosen(request.seed, event, probability) {
+                let row = values.values()[i * width..(i + 1) * width].iter().map(|&v| v as f64).collect();
+                rows.entry(channel).or_default().push((unit_of_event.get(&event).copied(), row));
+            }
+        }
+    }
+    drop(feature_batches);
+    let isolation: Vec<(Option<f64>, Option<f64>)> = (0..n_units)
+        .map(|unit| {
+            let Some(group) = rows.get(&feature_channel[unit]) else { return (None, None) };
+            let width = group.first().map_or(0, |r| r.1.len());
+            let dims: Vec<usize> = (0..width).filter(|&d| group.iter().any(|r| r.1[d] != group[0].1[d])).collect();
+            let project = |r: &Vec<f64>| dims.iter().map(|&d| r[d]).collect::<Vec<f64>>();
+            let cluster: Vec<Vec<f64>> = group.iter().filter(|r| r.0 == Some(unit)).map(|r| project(&r.1)).collect();
+            let others: Vec<Vec<f64>> = group.iter().filter(|r| r.0 != Some(unit)).map(|r| project(&r.1)).collect();
+            metrics::isolation_and_l_ratio(&cluster, &others)
+        })
+        .collect();
+
+    let per_unit: Vec<[f64; 9]> = (0..n_units)
+        .map(|unit| {
+            let train = &trains[unit];
+            let samples: Vec<u64> = train.iter().map(|s| s.sample).collect();
+            let n = samples.len() as u64;
+            let (violations, intervals) = metrics::isi_violations(&samples, refractory_frames);
+            let contamination = metrics::hill_contamination(
+                n,
+                duration_s,
+                violations,
+                params.refractory_ms * 1e-3,
+                params.censored_ms * 1e-3,
+            );
+            let ratios: Vec<f64> = train
+                .iter()
+                .filter_map(|s| {
+                    threshold.get(s.channel).filter(|t| **t > 0.0).map(|t| (s.amplitude_uv as f64).abs() / t)
+                })
+                .collect();
+            let (low, high) = stats::poisson_interval_95(n);
+            let sigma = noise_at(main_channel[unit]);
+            [
+                -trough[unit] / sigma,
+                (peak[unit] - trough[unit]) / sigma,
+                violations as f64,
+                if intervals > 0 { violations as f64 / intervals as f64 } else { f64::NAN },
+                contamination,
+                metrics::presence_ratio(&samples, recording.n_frames, n_presence_bins),
+                metrics::fraction_below_threshold(&ratios),
+                low / duration_s,
+                high / duration_s,
+            ]
+        })
+        .collect();
+    let column_of = |k: usize| -> ArrayRef { Arc::new(Float64Array::from_iter_values(per_unit.iter().map(|m| m[k]))) };
+    let mut fields: Vec<Field> = units.schema().fields().iter().map(|f| f.as_ref().clone()).collect();
+    let mut columns: Vec<ArrayRef> = units.columns().to_vec();
+    let added: [(&str, ArrayRef); 12] = [
+        ("snr", column_of(0)),
+        ("snr_peak_to_peak", column_of(1)),
+        ("isi_violations", Arc::new(Int64Array::from_iter_values(per_unit.iter().map(|m| m[2] as i64)))),
+        ("isi_violation_ratio", column_of(3)),
+        ("contamination", column_of(4)),
+        ("presence_ratio", column_of(5)),
+        ("fraction_missing", column_of(6)),
+        ("firing_rate_ci_low_hz", column_of(7)),
+        ("firing_rate_ci_high_hz", column_of(8)),
+        ("isolation_distance", Arc::new(Float64Array::from_iter(isolation.iter().map(|m| m.0)))),
+        ("l_ratio", Arc::new(Float64Array::from_iter(isolation.iter().map(|m| m.1)))),
+        ("feature_channel", Arc::new(Int32Array::from_iter_values(feature_channel.iter().map(|&c| c as i32)))),
+    ];
+    for (name, array) in added {
+        fields.push(Field::new(
+            name,
+            array.data_type().clone(),
+            array.null_count() > 0 || name == "isolation_distance" || name == "l_ratio",
+        ));
+        columns.push(array);
+    }
+    let metadata = request.table_metadata(EXECUTABLE, VERSION, &params);
+    let batch = RecordBatch::try_new(Arc::new(Schema::new(fields)), columns)
+        .map_err(|source| StageFailure::failed(ContractError::Arrow { path: units_path.clone(), source }))?;
+    write_table(&request.output(UNITS_TABLE), &batch, &metadata)?;
+
+    // Firing rates per bin.
+    let bin_frames = (params.rate_bin_s * fs).round().max(1.0) as u64;
+    let n_bins = recording.n_frames.div_ceil(bin_frames) as usize;
+    let mut rate_rows: Vec<RateRow> = Vec::with_capacity(n_units * n_bins);
+    for (unit, train) in trains.iter().enumerate() {
+        let mut counts = vec![0u64; n_bins];
+        for s in train {
+            counts[(s.sample / bin_frames) as usize] += 1;
+        }
+        let widths: Vec<f64> =
+            (0..n_bins).map(|b| ((recording.n_frames - b as u64 * bin_frames).min(bin_frames)) as f64 / fs).collect();
+        let rates: Vec<f64> = counts.iter().zip(&widths).map(|(&c, w)| c as f64 / w).collect();
+        let smoothed = if params.smoothing_s > 0.0 {
+            smooth(&rates, params.smoothing_s / params.rate_bin_s)
+        } else {
+            vec![f64::NAN; n_bins]
+        };
+        for b in 0..n_bins {
+            let (low, high) = stats::poisson_interval_95(counts[b]);
+            rate_rows.push((
+                unit as i32,
+                b as f64 * bin_frames as f64 / fs,
+                widths[b],
+                counts[b] as i64,
+                rates[b],
+                low / widths[b],
+                high / widths[b],
+                smoothed[b],
+            ));
+        }
+    }
+    let rates_batch = RecordBatch::try_new(
+        Arc::new(Schema::new(vec![
+            Field::new("unit_id", DataType::Int32, false),
+            Field::new("bin_start_s", DataType::Float64, false),
+            Field::new("bin_s", DataType::Float64, false),
+            Field::new("count", DataType::Int64, false),
+            Field::new("rate_hz", DataType::Float64, false),
+            Field::new("ci_low_hz", DataType::Float64, false),
+            Field::new("ci_high_hz", DataType::Float64, false),
+            Field::new("smoothed_rate_hz", DataType::Float64, false),
+        ])),
+        vec![
+            Arc::new(Int32Array::from_iter_values(rate_rows.iter().map(|r| r.0))) as ArrayRef,
+            Arc::new(Float64Array::from_iter_values(rate_rows.iter().map(|r| r.1))),
+            Arc::new(Float64Array::from_iter_values(rate_rows.iter().map(|r| r.2))),
+            Arc::new(Int64Array::from_iter_values(rate_rows.iter().map(|r| r.3))),
+            Arc::new(Float64Array::from_iter_values(rate_rows.iter().map(|r| r.4))),
+            Arc::new(Float64Array::from_iter_values(rate_rows.iter().map(|r| r.5))),
+            Arc::new(Float64Array::from_iter_values(rate_rows.iter().map(|r| r.6))),
+            Arc::new(Float64Array::from_iter_values(rate_rows.iter().map(|r| r.7))),
+        ],
+    )
+    .expect("rate columns match their schema");
+    write_table(&request.output(FIRING_RATES_TABLE), &rates_batch, &metadata)?;
+    report.summary.insert("units".into(), n_units.into());
+    report
+        .summary
+        .insert("units_with_isolation_distance".into(), isolation.iter().filter(|m| m.0.is_some()).count().into());
+    Ok(report)
+}
+
+/// All batches of a small table as one.
+fn arrow_select_concat(path: &Path, batches: &[RecordBatch]) -> Result<RecordBatch, StageFailure> {
+    let Some(first) = batches.first() else {
+        return Err(StageFailure::bad_input(ContractError::Format {
+            path: path.to_path_buf(),
+            message: "the table has no rows".into(),
+        }));
+    };
+    arrow_select::concat::concat_batches(&first.schema(), batches)
+        .map_err(|source| StageFailure::failed(ContractError::Arrow { path: path.to_path_buf(), source }))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn smoothing_keeps_a_constant_and_spreads_a_spike() {
+        assert!(smooth(&[2.0; 20], 3.0).iter().all(|v| (v - 2.0).abs() < 1e-12));
+        let mut impulse = vec![0.0; 21];
+        impulse[10] = 1.0;
+        let out = smooth(&impulse, 2.0);
+        assert!((out[8] - out[12]).abs() < 1e-15 && out[10] > out[9]);
+    }
+}
