@@ -260,23 +260,10 @@ fn measure_templates(
 /// Bad input ([`StageFailure::bad_input`]) or failures while working.
 pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     let mut report = StageReport::default();
-    let input = match request.artifact("filtered.toml") {
-        Some(path) => path.to_path_buf(),
-        None => {
-            report.warn("no earlier stage wrote filtered.toml; templates come from the raw recording");
-            request.recording.clone()
-        }
-    };
-    let recording = Recording::open(&input).map_err(StageFailure::bad_input)?;
+    let recording = request.open_filtered_or_raw(&mut report, "templates come from")?;
     let features_path = request.require_artifact("features.parquet").map_err(StageFailure::bad_input)?.to_path_buf();
     let params: ClusterParams = request.params().map_err(StageFailure::bad_input)?;
-    let valid = params.check(recording.sample_rate_hz).map_err(|message| {
-        StageFailure::bad_input(ContractError::Param {
-            path: request.path.clone(),
-            key: format!("{}.params", request.stage),
-            message,
-        })
-    })?;
+    let valid = params.check(recording.sample_rate_hz).map_err(|message| request.params_refused(message))?;
     let n_channels = recording.n_channels;
     let channel_of = |batch: &FeatureBatch, i: usize| -> Result<usize, StageFailure> {
         let channel = batch.channels.value(i);

@@ -118,6 +118,36 @@ impl StageRequest {
         self.output_dir.join(file)
     }
 
+    /// The recording a stage after the filter works on: the earlier stage's
+    /// `filtered.toml` when there is one, else the raw recording (with a
+    /// warning in `report` that says what the stage does with it).
+    ///
+    /// # Errors
+    /// The description is refused ([`crate::StageFailure::bad_input`]).
+    pub fn open_filtered_or_raw(
+        &self,
+        report: &mut StageReport,
+        use_of_raw: &str,
+    ) -> Result<crate::Recording, crate::StageFailure> {
+        let path = match self.artifact("filtered.toml") {
+            Some(path) => path.to_path_buf(),
+            None => {
+                report.warn(format!("no earlier stage wrote filtered.toml; {use_of_raw} the raw recording"));
+                self.recording.clone()
+            }
+        };
+        crate::Recording::open(&path).map_err(crate::StageFailure::bad_input)
+    }
+
+    /// A refused parameter set, as the error of the stage's `check()` says.
+    pub fn params_refused(&self, message: String) -> crate::StageFailure {
+        crate::StageFailure::bad_input(ContractError::Param {
+            path: self.path.clone(),
+            key: format!("{}.params", self.stage),
+            message,
+        })
+    }
+
     /// Parquet key-value metadata for every table a stage writes: the
     /// program and version, the parameters, the run's cache key and the
     /// recording's content hash.

@@ -84,3 +84,16 @@ impl TestRng {
         radius * angle.cos()
     }
 }
+
+/// The command-line checks every stage executable must pass: no arguments
+/// is a usage error (exit 2), an unreadable request is refused naming it.
+pub fn check_stage_command_line(executable: &Path) {
+    use std::process::Command;
+    let output = Command::new(executable).output().expect("the stage starts");
+    assert_eq!(output.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&output.stderr).contains("--request"));
+    let output =
+        Command::new(executable).args(["--request", "/nonexistent/request.json"]).output().expect("the stage starts");
+    assert_eq!(output.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&output.stderr).contains("/nonexistent/request.json"));
+}

@@ -190,22 +190,9 @@ fn events_batch(events: &[Event], sample_rate_hz: f64, noise_uv: &[f64]) -> Reco
 /// Bad input ([`StageFailure::bad_input`]) or failures while working.
 pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     let mut report = StageReport::default();
-    let input = match request.artifact(FILTERED_RECORDING) {
-        Some(path) => path.to_path_buf(),
-        None => {
-            report.warn("no earlier stage wrote filtered.toml; detecting on the raw recording");
-            request.recording.clone()
-        }
-    };
-    let recording = Recording::open(&input).map_err(StageFailure::bad_input)?;
+    let recording = request.open_filtered_or_raw(&mut report, "detecting on")?;
     let params: DetectParams = request.params().map_err(StageFailure::bad_input)?;
-    let valid = params.check(recording.sample_rate_hz).map_err(|message| {
-        StageFailure::bad_input(ContractError::Param {
-            path: request.path.clone(),
-            key: format!("{}.params", request.stage),
-            message,
-        })
-    })?;
+    let valid = params.check(recording.sample_rate_hz).map_err(|message| request.params_refused(message))?;
     let usable = match (valid.skip_flagged_channels, request.artifact(CHANNEL_QC_TABLE)) {
         (true, Some(path)) => read_usable_channels(path, recording.n_channels).map_err(StageFailure::bad_input)?,
         _ => vec![true; recording.n_channels],

@@ -26,7 +26,7 @@ use pca::Pca;
 use rayon::prelude::*;
 use spikeyard_contract::events::{for_each_event_window, EventRecord, EventStream, EventWindow};
 use spikeyard_contract::table::{write_table, TableWriter};
-use spikeyard_contract::{ContractError, ProgressReporter, Recording, StageFailure, StageReport, StageRequest};
+use spikeyard_contract::{ProgressReporter, Recording, StageFailure, StageReport, StageRequest};
 use std::sync::Arc;
 
 pub const EXECUTABLE: &str = "spikeyard-features";
@@ -200,23 +200,10 @@ fn neighbourhoods_batch(neighbourhoods: &[Vec<(usize, f64)>]) -> RecordBatch {
 /// Bad input ([`StageFailure::bad_input`]) or failures while working.
 pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     let mut report = StageReport::default();
-    let input = match request.artifact("filtered.toml") {
-        Some(path) => path.to_path_buf(),
-        None => {
-            report.warn("no earlier stage wrote filtered.toml; cutting snippets from the raw recording");
-            request.recording.clone()
-        }
-    };
-    let recording = Recording::open(&input).map_err(StageFailure::bad_input)?;
+    let recording = request.open_filtered_or_raw(&mut report, "cutting snippets from")?;
     let events_path = request.require_artifact("events.parquet").map_err(StageFailure::bad_input)?.to_path_buf();
     let params: FeaturesParams = request.params().map_err(StageFailure::bad_input)?;
-    let valid = params.check(recording.sample_rate_hz).map_err(|message| {
-        StageFailure::bad_input(ContractError::Param {
-            path: request.path.clone(),
-            key: format!("{}.params", request.stage),
-            message,
-        })
-    })?;
+    let valid = params.check(recording.sample_rate_hz).map_err(|message| request.params_refused(message))?;
     let extractor = Extractor {
         recording: &recording,
         params: &valid,

@@ -268,13 +268,7 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     let mut recording = Recording::open(&request.recording).map_err(StageFailure::bad_input)?;
     let params: FilterParams = request.params().map_err(StageFailure::bad_input)?;
     recording.non_finite = params.non_finite;
-    let valid = params.check(recording.sample_rate_hz).map_err(|message| {
-        StageFailure::bad_input(ContractError::Param {
-            path: request.path.clone(),
-            key: format!("{}.params", request.stage),
-            message,
-        })
-    })?;
+    let valid = params.check(recording.sample_rate_hz).map_err(|message| request.params_refused(message))?;
     let mut report = StageReport::default();
     for warning in &valid.warnings {
         report.warn(warning.clone());

@@ -26,7 +26,7 @@ use arrow_array::{
 use arrow_schema::{DataType, Field, Schema};
 use params::MeasuresParams;
 use spikeyard_contract::table::{column, read_table, write_table};
-use spikeyard_contract::{ContractError, Recording, StageFailure, StageReport, StageRequest};
+use spikeyard_contract::{ContractError, StageFailure, StageReport, StageRequest};
 use std::collections::HashMap;
 use std::path::Path;
 use std::sync::Arc;
@@ -111,8 +111,7 @@ pub fn smooth(values: &[f64], sigma: f64) -> Vec<f64> {
 /// Bad input ([`StageFailure::bad_input`]) or failures while working.
 pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     let mut report = StageReport::default();
-    let recording_path = request.artifact("filtered.toml").map_or_else(|| request.recording.clone(), Path::to_path_buf);
-    let recording = Recording::open(&recording_path).map_err(StageFailure::bad_input)?;
+    let recording = request.open_filtered_or_raw(&mut report, "reading the length and rate of")?;
     let need = |name: &str| request.require_artifact(name).map(Path::to_path_buf).map_err(StageFailure::bad_input);
     let (spikes_path, units_path, templates_path, noise_path, features_path) = (
         need("spikes.parquet")?,
@@ -122,13 +121,7 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
         need("features.parquet")?,
     );
     let params: MeasuresParams = request.params().map_err(StageFailure::bad_input)?;
-    params.check().map_err(|message| {
-        StageFailure::bad_input(ContractError::Param {
-            path: request.path.clone(),
-            key: format!("{}.params", request.stage),
-            message,
-        })
-    })?;
+    params.check().map_err(|message| request.params_refused(message))?;
     let fs = recording.sample_rate_hz;
     let duration_s = recording.duration_s();
 
