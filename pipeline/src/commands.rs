@@ -176,6 +176,7 @@ pub fn demo(out: &Path, scenario: &str, duration_s: f64, mode: ProgressMode) -> 
         score.n_events,
         score.precision()
     );
+    print!("\n{}", describe_units(&results_dir.join("units.parquet"))?);
     let comparison = compare(&results_dir, &simulated.truth_spikes, 0.5, None)?;
     println!(
         "\n  sorting against the simulated truth (±0.5 ms, one to one; {}):",
@@ -401,4 +402,48 @@ pub fn check(description: &Path) -> anyhow::Result<CheckReport> {
     text.push_str(&format!("dead        {} channel(s) {:?}\n", dead_channels.len(), dead_channels));
     text.push_str(&format!("noisy       {} channel(s) {:?}\n", noisy_channels.len(), noisy_channels));
     Ok(CheckReport { text, clipped_fraction, non_finite, dead_channels, noisy_channels })
+}
+
+/// The units table as printed by the demo: one line per unit not flagged small.
+///
+/// # Errors
+/// The table is missing or lacks the columns.
+pub fn describe_units(path: &Path) -> anyhow::Result<String> {
+    let mut text = format!(
+        "  sorted units not flagged small ({}):\n  {:>4} {:>7} {:>7} {:>8} {:>6} {:>8} {:>8} {:>8}\n",
+        path.display(),
+        "unit",
+        "channel",
+        "spikes",
+        "rate Hz",
+        "SNR",
+        "contam.",
+        "presence",
+        "L-ratio"
+    );
+    for batch in read_table(path)? {
+        let ids: &Int32Array = column(path, &batch, "unit_id")?;
+        let channels: &Int32Array = column(path, &batch, "channel")?;
+        let counts: &Int64Array = column(path, &batch, "n_spikes")?;
+        let small: &arrow_array::BooleanArray = column(path, &batch, "small")?;
+        let f = |name: &str| column::<Float64Array>(path, &batch, name).cloned();
+        let (rate, snr, contamination, presence, l_ratio) =
+            (f("firing_rate_hz")?, f("snr")?, f("contamination")?, f("presence_ratio")?, f("l_ratio")?);
+        for i in (0..batch.num_rows()).filter(|&i| !small.value(i)) {
+            use arrow_array::Array;
+            let l = if l_ratio.is_valid(i) { format!("{:.4}", l_ratio.value(i)) } else { "-".into() };
+            text.push_str(&format!(
+                "  {:>4} {:>7} {:>7} {:>8.2} {:>6.1} {:>8.3} {:>8.2} {:>8}\n",
+                ids.value(i),
+                channels.value(i),
+                counts.value(i),
+                rate.value(i),
+                snr.value(i),
+                contamination.value(i),
+                presence.value(i),
+                l
+            ));
+        }
+    }
+    Ok(text)
 }

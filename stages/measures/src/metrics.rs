@@ -58,7 +58,8 @@ pub fn isolation_and_l_ratio(cluster: &[Vec<f64>], others: &[Vec<f64>]) -> (Opti
     }
     let Some((factor, _)) = cholesky(&covariance, d) else { return (None, None) };
     let mut distances: Vec<f64> = others.iter().map(|x| mahalanobis_squared(&factor, &mean, x)).collect();
-    let l = distances.iter().map(|&d2| chi2_sf(d2, d as f64)).sum::<f64>();
+    // Adding 0.0 turns the −0.0 of an empty sum into 0.0.
+    let l = distances.iter().map(|&d2| chi2_sf(d2, d as f64)).sum::<f64>() + 0.0;
     distances.sort_by(f64::total_cmp);
     let isolation = distances.get(n - 1).copied();
     (isolation, Some(l / n as f64))

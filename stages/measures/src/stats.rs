@@ -41,9 +41,9 @@ pub fn gamma_p(a: f64, x: f64) -> f64 {
                 break;
             }
         }
-        (sum.ln() - x + a * x.ln() - ln_gamma(a)).exp()
+        (sum.ln() - x + a * x.ln() - ln_gamma(a)).exp().min(1.0)
     } else {
-        1.0 - gamma_q_continued_fraction(a, x)
+        (1.0 - gamma_q_continued_fraction(a, x)).max(0.0)
     }
 }
 
@@ -53,9 +53,9 @@ pub fn gamma_q(a: f64, x: f64) -> f64 {
         return 1.0;
     }
     if x < a + 1.0 {
-        1.0 - gamma_p(a, x)
+        (1.0 - gamma_p(a, x)).max(0.0)
     } else {
-        gamma_q_continued_fraction(a, x)
+        gamma_q_continued_fraction(a, x).clamp(0.0, 1.0)
     }
 }
 
