@@ -13,9 +13,14 @@ use std::process::{Command, Output};
 
 fn spikeyard_binary() -> PathBuf {
     let binary = PathBuf::from(env!("CARGO_BIN_EXE_spikeyard"));
-    for stage in
-        ["spikeyard-filter", "spikeyard-detect", "spikeyard-features", "spikeyard-cluster", "spikeyard-measures"]
-    {
+    for stage in [
+        "spikeyard-filter",
+        "spikeyard-detect",
+        "spikeyard-features",
+        "spikeyard-cluster",
+        "spikeyard-measures",
+        "spikeyard-propagation",
+    ] {
         assert!(
             binary.with_file_name(stage).exists(),
             "{stage} is not built next to {}; run the tests with `cargo test --release --workspace`",
@@ -182,7 +187,7 @@ fn cache_reruns_exactly_the_changed_stage_and_what_follows() {
     let simulated = write_recording(&Scenario::sparse_grid(4.0, 3), &dir.path().join("rec")).unwrap();
     let out = dir.path().join("out");
     assert_success(&run(&simulated.description, &out, None));
-    assert_eq!(stages_run(&out), ["filter", "detect", "features", "cluster", "measures"]);
+    assert_eq!(stages_run(&out), ["filter", "detect", "features", "cluster", "measures", "propagation"]);
     let events_before = std::fs::read(out.join("events.parquet")).unwrap();
 
     let second = run(&simulated.description, &out, None);
@@ -194,7 +199,7 @@ fn cache_reruns_exactly_the_changed_stage_and_what_follows() {
     let config = dir.path().join("order4.toml");
     std::fs::write(&config, default_config_with("order = 3", "order = 4")).unwrap();
     assert_success(&run(&simulated.description, &out, Some(&config)));
-    assert_eq!(stages_run(&out), ["filter", "detect", "features", "cluster", "measures"]);
+    assert_eq!(stages_run(&out), ["filter", "detect", "features", "cluster", "measures", "propagation"]);
 
     let config = dir.path().join("threshold.toml");
     std::fs::write(
@@ -203,7 +208,7 @@ fn cache_reruns_exactly_the_changed_stage_and_what_follows() {
     )
     .unwrap();
     assert_success(&run(&simulated.description, &out, Some(&config)));
-    assert_eq!(stages_run(&out), ["detect", "features", "cluster", "measures"]);
+    assert_eq!(stages_run(&out), ["detect", "features", "cluster", "measures", "propagation"]);
 
     // The manifest records what went in and what came out.
     let manifest: serde_json::Value =
@@ -223,7 +228,7 @@ fn cache_reruns_exactly_the_changed_stage_and_what_follows() {
     bytes[1001] ^= 0x40;
     std::fs::write(&data, bytes).unwrap();
     assert_success(&run(&simulated.description, &out, Some(&config)));
-    assert_eq!(stages_run(&out), ["filter", "detect", "features", "cluster", "measures"]);
+    assert_eq!(stages_run(&out), ["filter", "detect", "features", "cluster", "measures", "propagation"]);
 }
 
 // STYLE.md §5 and the brief: the same inputs give the same tables whatever the thread count.
@@ -697,4 +702,84 @@ fn check_describes_the_recording_and_finds_bad_channels() {
     assert!((report.clipped_fraction - 0.1).abs() < 1e-12, "{}", report.text);
     let refused = spikeyard(&["check", clip.join("missing.toml").to_str().unwrap()]);
     assert_eq!(refused.status.code(), Some(2));
+}
+
+/// A dense 24×24 patch at 17.5 µm, 30 kHz: three units with straight axons
+/// at 0.3, 1.0 and 2.0 m/s and one without an axon, far apart.
+fn axon_scenario(seconds: f64) -> Scenario {
+    use spikeyard::simulate::{Axon, UnitSpec};
+    let mut scenario = Scenario::dense_axons(seconds, 11);
+    scenario.sample_rate_hz = 30000.0;
+    scenario.electrodes = (0..24 * 24)
+        .map(|channel| spikeyard_contract::Electrode {
+            channel,
+            x_um: (channel % 24) as f64 * 17.5,
+            y_um: (channel / 24) as f64 * 17.5,
+            label: None,
+            group: None,
+        })
+        .collect();
+    let unit = |x_um: f64, y_um: f64, axon: Option<Axon>| UnitSpec {
+        x_um,
+        y_um,
+        z_um: 15.0,
+        peak_uv: 120.0,
+        rate_hz: 8.0,
+        burst_probability: 0.0,
+        trough_ms: 0.12,
+        axon,
+    };
+    let straight = |y: f64, velocity: f64| Axon {
+        path_um: vec![(20.0, y), (400.0, y)],
+        velocity_m_per_s: velocity,
+        peak_uv: 40.0,
+    };
+    scenario.units = vec![
+        unit(20.0, 40.0, Some(straight(40.0, 0.3))),
+        unit(20.0, 160.0, Some(straight(160.0, 1.0))),
+        unit(20.0, 280.0, Some(straight(280.0, 2.0))),
+        unit(300.0, 380.0, None),
+    ];
+    scenario
+}
+
+// Issue 4 (first part): conduction velocity of simulated straight axons on
+// a dense array, and no row for a unit without an axon. Measured so far:
+// 1.0 m/s is recovered within 10 %, but 0.3 m/s comes out ≈ 0.21 and
+// 2.0 m/s ≈ 1.3 (latency estimation near the axon's ends and the soma is
+// biased), so those two are only required to be reported and ordered;
+// issue 4 stays open for them.
+#[test]
+fn conduction_velocity_of_simulated_axons() {
+    let dir = tempfile::tempdir().unwrap();
+    let scenario = axon_scenario(15.0);
+    let simulated = write_recording(&scenario, &dir.path().join("rec")).unwrap();
+    let out = dir.path().join("out");
+    assert_success(&run(&simulated.description, &out, None));
+    let comparison = spikeyard::commands::compare(&out, &simulated.truth_spikes, 0.5, None).unwrap();
+    let text =
+        spikeyard::commands::describe_propagation(&out.join("propagation.parquet"), &comparison, &scenario).unwrap();
+    let path = out.join("propagation.parquet");
+    let mut first_branch: std::collections::HashMap<i32, f64> = std::collections::HashMap::new();
+    for batch in read_table(&path).unwrap() {
+        let units: &arrow_array::Int32Array = column(&path, &batch, "unit_id").unwrap();
+        let branches: &arrow_array::Int32Array = column(&path, &batch, "branch").unwrap();
+        let velocity: &arrow_array::Float64Array = column(&path, &batch, "velocity_m_per_s").unwrap();
+        for i in 0..batch.num_rows() {
+            if branches.value(i) == 0 {
+                first_branch.insert(units.value(i), velocity.value(i));
+            }
+        }
+    }
+    let sorted = |truth: usize| {
+        let m = &comparison.truth[truth];
+        assert!(m.accuracy() >= 0.9, "simulated unit {truth} not sorted\n{}", comparison.describe());
+        m.sorted_unit.unwrap() as i32
+    };
+    let measured: Vec<Option<f64>> = (0..3).map(|t| first_branch.get(&sorted(t)).copied()).collect();
+    assert!(measured.iter().all(Option::is_some), "{measured:?}\n{text}");
+    let v: Vec<f64> = measured.into_iter().flatten().collect();
+    assert!((v[1] - 1.0).abs() < 0.1, "1.0 m/s measured as {}\n{text}", v[1]);
+    assert!(v[0] < v[1] && v[1] < v[2], "velocities out of order {v:?}\n{text}");
+    assert!(!first_branch.contains_key(&sorted(3)), "the unit without an axon has a row\n{text}");
 }

@@ -196,6 +196,7 @@ pub fn demo(out: &Path, scenario: &str, duration_s: f64, mode: ProgressMode) -> 
         trusted.len(),
         small.len()
     );
+    print!("{}", describe_propagation(&results_dir.join("propagation.parquet"), &comparison, &scenario)?);
     println!("\n  Research software: check results before drawing any conclusion. Not a medical device.");
     Ok(())
 }
@@ -442,6 +443,54 @@ pub fn describe_units(path: &Path) -> anyhow::Result<String> {
                 contamination.value(i),
                 presence.value(i),
                 l
+            ));
+        }
+    }
+    Ok(text)
+}
+
+/// Measured conduction velocities, next to the simulated ones where a
+/// simulated unit with an axon was sorted.
+///
+/// # Errors
+/// The table is missing or lacks the columns.
+pub fn describe_propagation(
+    path: &Path,
+    comparison: &crate::compare::Comparison,
+    scenario: &Scenario,
+) -> anyhow::Result<String> {
+    let mut text = format!("\n  conduction velocity ({}):\n", path.display());
+    text.push_str(&format!(
+        "  {:>4} {:>6} {:>10} {:>19} {:>10} {:>9} {:>6} {:>14}\n",
+        "unit", "branch", "v m/s", "95 % interval", "electrodes", "path µm", "r²", "simulated m/s"
+    ));
+    for batch in read_table(path)? {
+        let units: &Int32Array = column(path, &batch, "unit_id")?;
+        let branches: &Int32Array = column(path, &batch, "branch")?;
+        let counts: &Int32Array = column(path, &batch, "n_electrodes")?;
+        let f = |name: &str| column::<Float64Array>(path, &batch, name).cloned();
+        let (velocity, low, high, length, r2) =
+            (f("velocity_m_per_s")?, f("ci_low")?, f("ci_high")?, f("path_length_um")?, f("r_squared")?);
+        for i in 0..batch.num_rows() {
+            let unit = units.value(i) as i64;
+            let simulated = comparison
+                .truth
+                .iter()
+                .find(|m| m.sorted_unit == Some(unit) && m.accuracy() >= 0.5)
+                .and_then(|m| scenario.units.get(m.truth_unit as usize))
+                .and_then(|u| u.axon.as_ref())
+                .map_or("-".to_string(), |a| format!("{:.2}", a.velocity_m_per_s));
+            text.push_str(&format!(
+                "  {:>4} {:>6} {:>10.3} {:>8.3} .. {:>7.3} {:>10} {:>9.0} {:>6.2} {:>14}\n",
+                unit,
+                branches.value(i),
+                velocity.value(i),
+                low.value(i),
+                high.value(i),
+                counts.value(i),
+                length.value(i),
+                r2.value(i),
+                simulated
             ));
         }
     }

@@ -158,7 +158,7 @@ mod tests {
     fn default_config_parses_with_filter_then_detect() {
         let config = PipelineConfig::load(None).unwrap();
         let names: Vec<_> = config.stages.iter().map(|s| s.name.as_str()).collect();
-        assert_eq!(names, vec!["filter", "detect", "features", "cluster", "measures"]);
+        assert_eq!(names, vec!["filter", "detect", "features", "cluster", "measures", "propagation"]);
     }
 
     // The default config file must say exactly what the stages' defaults are.
@@ -180,6 +180,9 @@ mod tests {
         let measures: spikeyard_measures::params::MeasuresParams =
             serde_json::from_value(config.stages[4].params.clone()).unwrap();
         assert_eq!(measures, spikeyard_measures::params::MeasuresParams::default());
+        let propagation: spikeyard_propagation::params::PropagationParams =
+            serde_json::from_value(config.stages[5].params.clone()).unwrap();
+        assert_eq!(propagation, spikeyard_propagation::params::PropagationParams::default());
         assert_eq!(config.run, RunSettings::default());
         // And it lists every parameter, so the file documents them all.
         let listed = |i: usize| config.stages[i].params.as_object().unwrap().len();

@@ -205,6 +205,8 @@ fn axon_shape(t_ms: f64) -> f64 {
 
 /// Spacing of the axon's point sources, µm.
 const AXON_STEP_UM: f64 = 2.0;
+/// Distance above the soma of the return current of its spike, µm.
+const SOMA_RETURN_UM: f64 = 40.0;
 /// Height of the axon above the array surface, µm.
 const AXON_HEIGHT_UM: f64 = 3.0;
 
@@ -245,8 +247,16 @@ pub fn render_template(unit: &UnitSpec, electrodes: &[Electrode], sample_rate_hz
     let post_frames = ((2.5 + axon_ms) / frame_ms).ceil() as usize;
     let n = pre_frames + post_frames;
     let distance = |e: &Electrode, x: f64, y: f64, z: f64| ((e.x_um - x).powi(2) + (e.y_um - y).powi(2) + z * z).sqrt();
-    let nearest = electrodes.iter().map(|e| distance(e, unit.x_um, unit.y_um, unit.z_um)).fold(f64::INFINITY, f64::min);
-    let soma_scale = unit.peak_uv * nearest;
+    // The soma's inward current is balanced by an outward return current
+    // higher up the dendrite: two opposite point sources (each φ = I/(4πσr),
+    // REFERENCES.md V5), so the somatic spike fades faster than 1/r and the
+    // axon's own signal dominates farther away, as on real arrays.
+    let soma_geometry = |e: &Electrode| {
+        1.0 / distance(e, unit.x_um, unit.y_um, unit.z_um)
+            - 1.0 / distance(e, unit.x_um, unit.y_um, unit.z_um + SOMA_RETURN_UM)
+    };
+    let strongest = electrodes.iter().map(soma_geometry).fold(f64::MIN_POSITIVE, f64::max);
+    let soma_scale = unit.peak_uv / strongest;
     // Axon segments lie AXON_HEIGHT_UM above the surface. The current
     // shape is coherent over ≈ 40–80 µm of axon (its duration × velocity),
     // over which Σ step/r for an electrode under the axon is ≈ 2·asinh(30/3)
@@ -255,7 +265,7 @@ pub fn render_template(unit: &UnitSpec, electrodes: &[Electrode], sample_rate_hz
     let mut channels = Vec::new();
     let mut values_uv = Vec::new();
     for e in electrodes {
-        let r_soma = distance(e, unit.x_um, unit.y_um, unit.z_um);
+        let soma_factor = soma_scale * soma_geometry(e);
         let near_axon: Vec<(f64, f64)> = axon_sources
             .iter()
             .map(|&(x, y, delay)| (distance(e, x, y, AXON_HEIGHT_UM), delay))
@@ -264,7 +274,7 @@ pub fn render_template(unit: &UnitSpec, electrodes: &[Electrode], sample_rate_hz
         let row: Vec<f32> = (0..n)
             .map(|k| {
                 let t = (k as f64 - pre_frames as f64) * frame_ms;
-                let soma = soma_scale / r_soma * soma_shape(t, unit.trough_ms);
+                let soma = soma_factor * soma_shape(t, unit.trough_ms);
                 let axon: f64 =
                     near_axon.iter().map(|(r, delay)| axon_scale * AXON_STEP_UM / r * axon_shape(t - delay)).sum();
                 (soma + axon) as f32
@@ -560,8 +570,9 @@ mod tests {
     use super::*;
 
     #[test]
-    fn soma_potential_falls_off_as_one_over_distance() {
-        // REFERENCES.md V5: point source φ = I/(4πσr), so φ·r is constant.
+    fn soma_potential_is_a_sink_and_its_return_source() {
+        // REFERENCES.md V5: each point source gives φ = I/(4πσr), so the
+        // trough on each electrode is proportional to 1/r_sink − 1/r_return.
         let electrodes: Vec<Electrode> = [0.0, 30.0, 90.0]
             .iter()
             .enumerate()
@@ -579,11 +590,13 @@ mod tests {
         };
         let template = render_template(&unit, &electrodes, 20000.0);
         let trough: Vec<f64> = template.values_uv.iter().map(|row| row[template.pre_frames] as f64).collect();
-        let r = [20.0f64, 30.0f64.hypot(20.0), 90.0f64.hypot(20.0)];
-        let products: Vec<f64> = trough.iter().zip(r).map(|(v, r)| v * r).collect();
-        assert!((trough[0] + 100.0 * 0.7).abs() < 100.0 * 0.31, "{trough:?}");
-        assert!((products[0] - products[1]).abs() < 1e-3 * products[0].abs());
-        assert!((products[0] - products[2]).abs() < 1e-3 * products[0].abs());
+        let geometry: Vec<f64> =
+            [0.0f64, 30.0, 90.0].iter().map(|x| 1.0 / x.hypot(20.0) - 1.0 / x.hypot(60.0)).collect();
+        for i in 1..trough.len() {
+            assert!((trough[i] / trough[0] - geometry[i] / geometry[0]).abs() < 1e-5, "{trough:?}");
+        }
+        // The nearest electrode sees about the unit's amplitude (the rebound takes a little off).
+        assert!((trough[0] + 100.0).abs() < 15.0, "{trough:?}");
     }
 
     #[test]

@@ -66,6 +66,14 @@ pub const BUILTIN_STAGES: &[BuiltinStage] = &[
             p.check().map(|_| Vec::new()).map_err(|e| format!("params: {e}"))
         },
     },
+    BuiltinStage {
+        name: "propagation",
+        about: "spike-triggered footprints, axon tracking, conduction velocity per branch",
+        check: |params, _rate| {
+            let p: spikeyard_propagation::params::PropagationParams = parse_params(params)?;
+            p.check().map(|_| Vec::new()).map_err(|e| format!("params: {e}"))
+        },
+    },
 ];
 
 pub fn builtin(name: &str) -> Option<&'static BuiltinStage> {
