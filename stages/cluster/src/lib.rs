@@ -30,10 +30,9 @@ use arrow_schema::{DataType, Field, Schema};
 use merge::{Template, TemplateSummary};
 use model::Mixture;
 use params::{ClusterParams, ValidClusterParams};
-use parquet::arrow::arrow_reader::ParquetRecordBatchReaderBuilder;
 use rayon::prelude::*;
 use spikeyard_contract::events::{for_each_event_window, EventRecord};
-use spikeyard_contract::table::{column, write_table};
+use spikeyard_contract::table::{column, for_each_batch, write_table};
 use spikeyard_contract::{ContractError, ProgressReporter, Recording, StageFailure, StageReport, StageRequest};
 use std::path::Path;
 use std::sync::Arc;
@@ -77,17 +76,8 @@ pub fn for_each_feature_batch(
     path: &Path,
     mut visit: impl FnMut(&FeatureBatch) -> Result<(), StageFailure>,
 ) -> Result<(), StageFailure> {
-    let file = std::fs::File::open(path).map_err(|e| StageFailure::bad_input(ContractError::io(path, e)))?;
-    let parquet = |source| StageFailure::bad_input(ContractError::Parquet { path: path.to_path_buf(), source });
-    let reader = ParquetRecordBatchReaderBuilder::try_new(file)
-        .map_err(parquet)?
-        .with_batch_size(65536)
-        .build()
-        .map_err(parquet)?;
-    for batch in reader {
-        let batch =
-            batch.map_err(|source| StageFailure::failed(ContractError::Arrow { path: path.to_path_buf(), source }))?;
-        let list: &FixedSizeListArray = column(path, &batch, "features")?;
+    for_each_batch(path, |batch| {
+        let list: &FixedSizeListArray = column(path, batch, "features")?;
         let features = list.values().as_any().downcast_ref::<Float32Array>().ok_or_else(|| {
             StageFailure::bad_input(ContractError::Format {
                 path: path.to_path_buf(),
@@ -95,17 +85,16 @@ pub fn for_each_feature_batch(
             })
         })?;
         visit(&FeatureBatch {
-            events: column(path, &batch, "event")?,
-            samples: column(path, &batch, "sample")?,
-            channels: column(path, &batch, "channel")?,
-            amplitudes: column(path, &batch, "amplitude_uv")?,
-            x_um: column(path, &batch, "x_um")?,
-            y_um: column(path, &batch, "y_um")?,
+            events: column(path, batch, "event")?,
+            samples: column(path, batch, "sample")?,
+            channels: column(path, batch, "channel")?,
+            amplitudes: column(path, batch, "amplitude_uv")?,
+            x_um: column(path, batch, "x_um")?,
+            y_um: column(path, batch, "y_um")?,
             features,
             width: list.value_length() as usize,
-        })?;
-    }
-    Ok(())
+        })
+    })
 }
 
 /// Seeded choice of `index` with probability `p` (independent per salt).

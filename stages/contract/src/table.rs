@@ -91,6 +91,29 @@ pub fn read_table(path: &Path) -> Result<Vec<RecordBatch>, ContractError> {
     reader.collect::<Result<Vec<_>, _>>().map_err(|source| ContractError::Arrow { path: path.to_path_buf(), source })
 }
 
+/// Stream a table batch by batch (large tables: events, features, spikes).
+///
+/// # Errors
+/// The file is missing or not Parquet, a batch cannot be decoded, or
+/// `visit` fails.
+pub fn for_each_batch<E: From<ContractError>>(
+    path: &Path,
+    mut visit: impl FnMut(&RecordBatch) -> Result<(), E>,
+) -> Result<(), E> {
+    let file = File::open(path).map_err(|e| ContractError::io(path, e))?;
+    let parquet = |source| ContractError::Parquet { path: path.to_path_buf(), source };
+    let reader = parquet::arrow::arrow_reader::ParquetRecordBatchReaderBuilder::try_new(file)
+        .map_err(parquet)?
+        .with_batch_size(65536)
+        .build()
+        .map_err(parquet)?;
+    for batch in reader {
+        let batch = batch.map_err(|source| ContractError::Arrow { path: path.to_path_buf(), source })?;
+        visit(&batch)?;
+    }
+    Ok(())
+}
+
 /// A column of a batch by name, downcast to `T`.
 ///
 /// # Errors

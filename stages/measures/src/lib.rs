@@ -25,7 +25,7 @@ use arrow_array::{
 };
 use arrow_schema::{DataType, Field, Schema};
 use params::MeasuresParams;
-use spikeyard_contract::table::{column, read_table, write_table};
+use spikeyard_contract::table::{column, for_each_batch, read_table, write_table};
 use spikeyard_contract::{ContractError, StageFailure, StageReport, StageRequest};
 use std::collections::HashMap;
 use std::path::Path;
@@ -185,14 +185,15 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     let wanted: std::collections::BTreeSet<usize> = feature_channel.iter().copied().collect();
     let mut group_counts: HashMap<usize, u64> = HashMap::new();
     let mut rows: HashMap<usize, Vec<FeatureRow>> = HashMap::new();
-    let feature_batches = read_table(&features_path)?;
-    for batch in &feature_batches {
+    // Two streamed passes: count each electrode's events, then draw the subset.
+    for_each_batch(&features_path, |batch| {
         let channels: &Int32Array = column(&features_path, batch, "channel")?;
         for &c in channels.values() {
             *group_counts.entry(c.max(0) as usize).or_default() += 1;
         }
-    }
-    for batch in &feature_batches {
+        Ok::<(), StageFailure>(())
+    })?;
+    for_each_batch(&features_path, |batch| {
         let events: &Int64Array = column(&features_path, batch, "event")?;
         let channels: &Int32Array = column(&features_path, batch, "channel")?;
         let list: &FixedSizeListArray = column(&features_path, batch, "features")?;
@@ -212,8 +213,8 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
                 rows.entry(channel).or_default().push((unit_of_event.get(&event).copied(), row));
             }
         }
-    }
-    drop(feature_batches);
+        Ok::<(), StageFailure>(())
+    })?;
     let isolation: Vec<(Option<f64>, Option<f64>)> = (0..n_units)
         .map(|unit| {
             let Some(group) = rows.get(&feature_channel[unit]) else { return (None, None) };
