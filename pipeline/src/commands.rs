@@ -9,7 +9,7 @@ use anyhow::Context;
 use arrow_array::{Float64Array, Int32Array, Int64Array};
 use spikeyard_contract::table::{column, read_table};
 use spikeyard_contract::Recording;
-use std::path::{Path, PathBuf};
+use std::path::Path;
 
 /// Plan a run (validating recording and config first).
 ///
@@ -199,11 +199,6 @@ pub fn demo(out: &Path, scenario: &str, duration_s: f64, mode: ProgressMode) -> 
     print!("{}", describe_propagation(&results_dir.join("propagation.parquet"), &comparison, &scenario)?);
     println!("\n  Research software: check results before drawing any conclusion. Not a medical device.");
     Ok(())
-}
-
-/// Default demo output folder.
-pub fn default_demo_folder() -> PathBuf {
-    PathBuf::from("demo-out")
 }
 
 /// `spikeyard stages`: each built-in stage and the executable that would run.

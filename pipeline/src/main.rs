@@ -103,7 +103,7 @@ fn main() -> ExitCode {
         }
     };
     match outcome {
-        Ok(()) => ExitCode::SUCCESS,
+        Ok(()) => ExitCode::from(spikeyard::EXIT_OK),
         Err(error) => {
             eprintln!("error: {error:#}");
             ExitCode::from(commands::exit_code(&error))

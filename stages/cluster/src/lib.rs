@@ -32,6 +32,7 @@ use model::Mixture;
 use params::{ClusterParams, ValidClusterParams};
 use rayon::prelude::*;
 use spikeyard_contract::events::{for_each_event_window, EventRecord};
+use spikeyard_contract::sampling::keep;
 use spikeyard_contract::table::{column, for_each_batch, write_table};
 use spikeyard_contract::{ContractError, ProgressReporter, Recording, StageFailure, StageReport, StageRequest};
 use std::path::Path;
@@ -95,15 +96,6 @@ pub fn for_each_feature_batch(
             width: list.value_length() as usize,
         })
     })
-}
-
-/// Seeded choice of `index` with probability `p` (independent per salt).
-fn chosen(seed: u64, salt: u64, index: u64, probability: f64) -> bool {
-    let mut z = seed ^ salt.wrapping_mul(0xD1B5_4A32_D192_ED03) ^ index.wrapping_mul(0x9E37_79B9_7F4A_7C15);
-    z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
-    z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
-    z ^= z >> 31;
-    ((z >> 11) as f64 / (1u64 << 53) as f64) < probability
 }
 
 /// The fitted model of one electrode's group of events.
@@ -211,7 +203,7 @@ fn measure_templates(
     let mut averaged = vec![0usize; n_units];
     let chosen_spikes = spikes.iter().enumerate().filter(|(i, s)| {
         let probability = params.template_spikes as f64 / counts[s.unit as usize].max(1) as f64;
-        chosen(seed, 0x7E3D, *i as u64, probability)
+        keep(seed, 0x7E3D, *i as u64, probability)
     });
     let events = chosen_spikes.map(|(i, s)| {
         Ok(EventRecord { index: i as u64, sample: s.sample, channel: s.channel as usize, amplitude_uv: s.amplitude_uv })
@@ -278,7 +270,7 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
         for i in 0..batch.len() {
             let channel = channel_of(batch, i)?;
             let probability = valid.fit_events_per_channel as f64 / counts[channel].max(1) as f64;
-            if chosen(request.seed, 0xF17, index, probability) {
+            if keep(request.seed, 0xF17, index, probability) {
                 fit_rows[channel].push(batch.row(i).to_vec());
             }
             index += 1;

@@ -14,6 +14,7 @@
 //!   recording that hands each chunk's events to a callback.
 //! - [`noise`]: the MAD noise estimate shared by the QC and detect stages.
 //! - [`hash`]: content hashes for cache keys and manifests.
+//! - [`sampling`]: seeded subsets independent of visiting order.
 //! - [`mod@stage_main`]: the command-line glue every Rust stage shares.
 //!
 //! Conventions, stated once: samples are 0-based frame indices into the
@@ -27,6 +28,7 @@ pub mod linalg;
 pub mod noise;
 pub mod recording;
 pub mod request;
+pub mod sampling;
 pub mod stage_main;
 pub mod table;
 pub mod testing;

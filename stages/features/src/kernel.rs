@@ -78,15 +78,6 @@ pub fn centre_of_mass(electrodes: &[Electrode], channels: &[(usize, f64)], troug
     }
 }
 
-/// Whether event `index` is in the seeded fitting subset of probability `p`.
-pub fn chosen_for_fit(seed: u64, index: u64, probability: f64) -> bool {
-    let mut z = seed ^ index.wrapping_mul(0x9E37_79B9_7F4A_7C15);
-    z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
-    z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
-    z ^= z >> 31;
-    ((z >> 11) as f64 / (1u64 << 53) as f64) < probability
-}
-
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -141,13 +132,5 @@ mod tests {
             .collect();
         let (x, y) = centre_of_mass(&electrodes, &[(0, 0.0), (1, 30.0)], &[-30.0, -10.0]);
         assert!((x - 7.5).abs() < 1e-12 && y == 0.0);
-    }
-
-    #[test]
-    fn fit_subset_has_the_requested_fraction_and_depends_on_the_seed() {
-        let chosen = (0..100_000u64).filter(|&i| chosen_for_fit(7, i, 0.2)).count();
-        assert!((chosen as f64 - 20_000.0).abs() < 600.0, "{chosen}");
-        let same = (0..1000u64).filter(|&i| chosen_for_fit(7, i, 0.5) == chosen_for_fit(8, i, 0.5)).count();
-        assert!(same < 600);
     }
 }

@@ -36,6 +36,9 @@ pub const FEATURES_TABLE: &str = "features.parquet";
 pub const PCA_TABLE: &str = "pca_components.parquet";
 pub const NEIGHBOURHOODS_TABLE: &str = "neighbourhoods.parquet";
 
+/// Salt of the seeded subset of events the PCA is fitted on.
+const SALT_PCA_FIT: u64 = 0xFEA7;
+
 /// Schema of `features.parquet` for `width` features per event.
 pub fn features_schema(width: usize) -> SchemaRef {
     Arc::new(Schema::new(vec![
@@ -218,7 +221,11 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     let probability = (valid.fit_events as f64 / n_events.max(1) as f64).min(1.0);
     let mut fit_rows: Vec<Vec<f64>> = Vec::new();
     for_each_event_window(&recording, &mut events, &events_path, valid.chunk_frames, margin, |window| {
-        for event in window.events.iter().filter(|e| kernel::chosen_for_fit(request.seed, e.index, probability)) {
+        for event in window
+            .events
+            .iter()
+            .filter(|e| spikeyard_contract::sampling::keep(request.seed, SALT_PCA_FIT, e.index, probability))
+        {
             fit_rows.extend(extractor.snippets(window, event).1);
         }
         Ok::<(), StageFailure>(())

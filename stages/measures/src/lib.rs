@@ -78,15 +78,6 @@ type FeatureRow = (Option<usize>, Vec<f64>);
 /// unit, bin start s, bin s, count, rate, interval low, interval high, smoothed rate.
 type RateRow = (i32, f64, f64, i64, f64, f64, f64, f64);
 
-/// Seeded choice of `index` with probability `p`.
-fn chosen(seed: u64, index: u64, probability: f64) -> bool {
-    let mut z = seed ^ index.wrapping_mul(0x9E37_79B9_7F4A_7C15) ^ 0x1507;
-    z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
-    z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
-    z ^= z >> 31;
-    ((z >> 11) as f64 / (1u64 << 53) as f64) < probability
-}
-
 /// Gaussian-kernel smoothing of a sequence (σ in samples), edges renormalised.
 pub fn smooth(values: &[f64], sigma: f64) -> Vec<f64> {
     let reach = (4.0 * sigma).ceil() as isize;
@@ -208,7 +199,8 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
             let channel = channels.value(i).max(0) as usize;
             let event = events.value(i).max(0) as u64;
             let probability = params.isolation_events_per_channel as f64 / group_counts[&channel] as f64;
-            if wanted.contains(&channel) && chosen(request.seed, event, probability) {
+            if wanted.contains(&channel) && spikeyard_contract::sampling::keep(request.seed, 0x1507, event, probability)
+            {
                 let row = values.values()[i * width..(i + 1) * width].iter().map(|&v| v as f64).collect();
                 rows.entry(channel).or_default().push((unit_of_event.get(&event).copied(), row));
             }

@@ -239,10 +239,7 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
         .enumerate()
         .filter(|(i, s)| {
             let p = params.max_spikes_per_unit as f64 / per_unit[s.0] as f64;
-            let mut z = request.seed ^ (*i as u64).wrapping_mul(0x9E37_79B9_7F4A_7C15) ^ 0xA705;
-            z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
-            z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
-            (((z ^ (z >> 31)) >> 11) as f64 / (1u64 << 53) as f64) < p
+            spikeyard_contract::sampling::keep(request.seed, 0xA705, *i as u64, p)
         })
         .map(|(_, s)| *s)
         .collect();
