@@ -147,6 +147,14 @@ fn detection_on_the_default_scenario_finds_every_unit_above_five_sigma() {
     let rates_path = out.join("firing_rates.parquet");
     let rows: usize = read_table(&rates_path).unwrap().iter().map(|b| b.num_rows()).sum();
     assert_eq!(rows, units.num_rows() * 30);
+
+    // Issue 4 (propagation on a sparse array): the largest unit's axon along
+    // its row of electrodes at 200 µm pitch, 0.8 m/s, within 10 %; no other
+    // sorted unit has a row.
+    let (measured, with_rows) = velocities_by_truth(&out, &comparison);
+    let axon = &measured[0];
+    assert!(axon.len() == 1 && (axon[0].1 - 0.8).abs() < 0.08, "{axon:?}");
+    assert_eq!(with_rows.len(), 1, "{with_rows:?}");
 }
 
 #[test]
@@ -729,11 +737,7 @@ fn axon_scenario(seconds: f64) -> Scenario {
         trough_ms: 0.12,
         axon,
     };
-    let straight = |y: f64, velocity: f64| Axon {
-        path_um: vec![(20.0, y), (400.0, y)],
-        velocity_m_per_s: velocity,
-        peak_uv: 40.0,
-    };
+    let straight = |y: f64, velocity: f64| Axon::straight((20.0, y), (400.0, y), velocity, 40.0);
     scenario.units = vec![
         unit(20.0, 40.0, Some(straight(40.0, 0.3))),
         unit(20.0, 160.0, Some(straight(160.0, 1.0))),
@@ -743,12 +747,34 @@ fn axon_scenario(seconds: f64) -> Scenario {
     scenario
 }
 
-// Issue 4 (first part): conduction velocity of simulated straight axons on
-// a dense array, and no row for a unit without an axon. Measured so far:
-// 1.0 m/s is recovered within 10 %, but 0.3 m/s comes out ≈ 0.21 and
-// 2.0 m/s ≈ 1.3 (latency estimation near the axon's ends and the soma is
-// biased), so those two are only required to be reported and ordered;
-// issue 4 stays open for them.
+/// Measured velocities by simulated unit: (branch, m/s) of the sorted unit
+/// that matches it at accuracy ≥ 0.9, and the sorted units with a row.
+fn velocities_by_truth(
+    out: &Path,
+    comparison: &spikeyard::compare::Comparison,
+) -> (Vec<Vec<(i32, f64)>>, std::collections::BTreeSet<i32>) {
+    let path = out.join("propagation.parquet");
+    let mut rows: Vec<(i32, i32, f64)> = Vec::new();
+    for batch in read_table(&path).unwrap() {
+        let units: &arrow_array::Int32Array = column(&path, &batch, "unit_id").unwrap();
+        let branches: &arrow_array::Int32Array = column(&path, &batch, "branch").unwrap();
+        let velocity: &arrow_array::Float64Array = column(&path, &batch, "velocity_m_per_s").unwrap();
+        rows.extend((0..batch.num_rows()).map(|i| (units.value(i), branches.value(i), velocity.value(i))));
+    }
+    let by_truth = comparison
+        .truth
+        .iter()
+        .map(|m| {
+            let sorted = m.sorted_unit.filter(|_| m.accuracy() >= 0.9).map(|u| u as i32);
+            rows.iter().filter(|r| Some(r.0) == sorted).map(|r| (r.1, r.2)).collect()
+        })
+        .collect();
+    (by_truth, rows.iter().map(|r| r.0).collect())
+}
+
+// Issue 4: conduction velocity of simulated straight axons at 0.3, 1.0 and
+// 2.0 m/s on a dense array, each within 10 %, and no row for a unit
+// without an axon.
 #[test]
 fn conduction_velocity_of_simulated_axons() {
     let dir = tempfile::tempdir().unwrap();
@@ -759,27 +785,44 @@ fn conduction_velocity_of_simulated_axons() {
     let comparison = spikeyard::commands::compare(&out, &simulated.truth_spikes, 0.5, None).unwrap();
     let text =
         spikeyard::commands::describe_propagation(&out.join("propagation.parquet"), &comparison, &scenario).unwrap();
-    let path = out.join("propagation.parquet");
-    let mut first_branch: std::collections::HashMap<i32, f64> = std::collections::HashMap::new();
-    for batch in read_table(&path).unwrap() {
-        let units: &arrow_array::Int32Array = column(&path, &batch, "unit_id").unwrap();
-        let branches: &arrow_array::Int32Array = column(&path, &batch, "branch").unwrap();
-        let velocity: &arrow_array::Float64Array = column(&path, &batch, "velocity_m_per_s").unwrap();
-        for i in 0..batch.num_rows() {
-            if branches.value(i) == 0 {
-                first_branch.insert(units.value(i), velocity.value(i));
-            }
-        }
+    let (measured, _) = velocities_by_truth(&out, &comparison);
+    for (truth, velocity) in [(0, 0.3), (1, 1.0), (2, 2.0)] {
+        let first = measured[truth].iter().find(|b| b.0 == 0).map(|b| b.1);
+        assert!(
+            first.is_some_and(|v| (v - velocity).abs() < 0.1 * velocity),
+            "{velocity} m/s measured as {first:?}\n{text}\n{}",
+            comparison.describe()
+        );
     }
-    let sorted = |truth: usize| {
-        let m = &comparison.truth[truth];
-        assert!(m.accuracy() >= 0.9, "simulated unit {truth} not sorted\n{}", comparison.describe());
-        m.sorted_unit.unwrap() as i32
+    assert!(measured[3].is_empty(), "the unit without an axon has a row\n{text}");
+}
+
+// Issue 4: on the dense-axons demo scenario, the straight (0.5 m/s) and
+// curved (1.0 m/s) axons within 10 %, both arms of the forked one (0.3 m/s)
+// found and within 15 %, and no row for the units without an axon.
+#[test]
+fn curved_and_forked_axons_on_the_dense_scenario() {
+    let dir = tempfile::tempdir().unwrap();
+    let scenario = Scenario::dense_axons(30.0, 1);
+    let simulated = write_recording(&scenario, &dir.path().join("rec")).unwrap();
+    let out = dir.path().join("out");
+    assert_success(&run(&simulated.description, &out, None));
+    let comparison = spikeyard::commands::compare(&out, &simulated.truth_spikes, 0.5, None).unwrap();
+    let text =
+        spikeyard::commands::describe_propagation(&out.join("propagation.parquet"), &comparison, &scenario).unwrap();
+    let (measured, _) = velocities_by_truth(&out, &comparison);
+    let within = |truth: usize, velocity: f64, tolerance: f64, branches: usize| {
+        let found: Vec<f64> = measured[truth].iter().map(|b| b.1).collect();
+        assert!(
+            found.len() >= branches && found.iter().take(branches).all(|v| (v - velocity).abs() < tolerance * velocity),
+            "unit {truth} at {velocity} m/s measured as {found:?}\n{text}\n{}",
+            comparison.describe()
+        );
     };
-    let measured: Vec<Option<f64>> = (0..3).map(|t| first_branch.get(&sorted(t)).copied()).collect();
-    assert!(measured.iter().all(Option::is_some), "{measured:?}\n{text}");
-    let v: Vec<f64> = measured.into_iter().flatten().collect();
-    assert!((v[1] - 1.0).abs() < 0.1, "1.0 m/s measured as {}\n{text}", v[1]);
-    assert!(v[0] < v[1] && v[1] < v[2], "velocities out of order {v:?}\n{text}");
-    assert!(!first_branch.contains_key(&sorted(3)), "the unit without an axon has a row\n{text}");
+    within(0, 0.5, 0.1, 1);
+    within(1, 1.0, 0.1, 1);
+    within(4, 0.3, 0.15, 2);
+    for truth in [2, 3, 5] {
+        assert!(measured[truth].is_empty(), "unit {truth} has no axon but has a row\n{text}");
+    }
 }

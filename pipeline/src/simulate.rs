@@ -29,7 +29,8 @@ use std::sync::Arc;
 /// Storage gain of simulated recordings, µV per stored unit (i16).
 pub const MICROVOLTS_PER_UNIT: f64 = 0.195;
 
-/// An axon: a polyline from the soma along the array surface.
+/// An axon: a polyline from the soma along the array surface, with side
+/// branches; the spike travels along all of it at one velocity.
 #[derive(Debug, Clone)]
 pub struct Axon {
     /// Points (x, y) in µm; the first is below the soma.
@@ -37,6 +38,65 @@ pub struct Axon {
     pub velocity_m_per_s: f64,
     /// Peak potential (µV) the axon gives on an electrode right under it.
     pub peak_uv: f64,
+    /// Side branches: each leaves the trunk at the trunk's point with that
+    /// index and follows its own points.
+    pub branches: Vec<(usize, Vec<(f64, f64)>)>,
+}
+
+impl Axon {
+    /// A straight axon without branches.
+    pub fn straight(from: (f64, f64), to: (f64, f64), velocity_m_per_s: f64, peak_uv: f64) -> Axon {
+        Axon { path_um: vec![from, to], velocity_m_per_s, peak_uv, branches: Vec::new() }
+    }
+
+    /// A curved axon without branches: the quadratic Bézier curve from
+    /// `from` to `to` pulled towards `control`, as a polyline of 32 pieces.
+    pub fn curved(from: (f64, f64), control: (f64, f64), to: (f64, f64), velocity_m_per_s: f64, peak_uv: f64) -> Axon {
+        let point = |t: f64| {
+            let (a, b, c) = ((1.0 - t) * (1.0 - t), 2.0 * t * (1.0 - t), t * t);
+            (a * from.0 + b * control.0 + c * to.0, a * from.1 + b * control.1 + c * to.1)
+        };
+        Axon {
+            path_um: (0..=32).map(|i| point(i as f64 / 32.0)).collect(),
+            velocity_m_per_s,
+            peak_uv,
+            branches: Vec::new(),
+        }
+    }
+
+    /// Point sources every `step_um` along the trunk and the branches:
+    /// (x, y, delay after the soma's spike in ms), and the longest delay.
+    fn sources(&self, step_um: f64) -> (Vec<(f64, f64, f64)>, f64) {
+        let mut sources = Vec::new();
+        let mut longest = 0.0f64;
+        // µm / (m/s) = µs; ÷1000 for ms.
+        let delay = |travelled_um: f64| travelled_um / self.velocity_m_per_s / 1e3;
+        let mut along = |points: &[(f64, f64)], start_um: f64, sources: &mut Vec<(f64, f64, f64)>| {
+            let mut travelled = start_um;
+            let mut at_point = vec![start_um];
+            for pair in points.windows(2) {
+                let ((x0, y0), (x1, y1)) = (pair[0], pair[1]);
+                let length = (x1 - x0).hypot(y1 - y0);
+                let n = (length / step_um).ceil() as usize;
+                for i in 0..n {
+                    let f = (i as f64 + 0.5) / n as f64;
+                    sources.push((x0 + f * (x1 - x0), y0 + f * (y1 - y0), delay(travelled + f * length)));
+                }
+                travelled += length;
+                at_point.push(travelled);
+            }
+            longest = longest.max(delay(travelled));
+            at_point
+        };
+        let trunk = along(&self.path_um, 0.0, &mut sources);
+        for (fork, points) in &self.branches {
+            let index = (*fork).min(self.path_um.len() - 1);
+            let mut path = vec![self.path_um[index]];
+            path.extend(points);
+            along(&path, trunk[index], &mut sources);
+        }
+        (sources, longest)
+    }
 }
 
 /// One simulated neuron.
@@ -103,7 +163,9 @@ impl Scenario {
 
     /// A cortical culture on an 8×8 grid at 200 µm pitch, 20 kHz: twelve
     /// units near twelve electrodes, from large to below threshold; one dead
-    /// and one noisy channel.
+    /// and one noisy channel. The largest unit's axon runs along its row of
+    /// electrodes at 0.8 m/s, below the detection threshold but seen in its
+    /// spike-triggered average.
     pub fn sparse_grid(duration_s: f64, seed: u64) -> Scenario {
         let electrodes = grid(8, 8, 200.0);
         let peaks = [160.0, 130.0, 115.0, 100.0, 90.0, 80.0, 72.0, 65.0, 60.0, 55.0, 22.0, 15.0];
@@ -115,15 +177,22 @@ impl Scenario {
             .enumerate()
             .map(|(i, (&peak_uv, home))| {
                 let e = &electrodes[home];
+                let (x_um, y_um) = (e.x_um + 25.0 * (rng.uniform() - 0.5), e.y_um + 25.0 * (rng.uniform() - 0.5));
+                let axon = (i == 0).then(|| Axon {
+                    path_um: vec![(x_um, y_um), (e.x_um + 60.0, e.y_um), (1450.0, e.y_um)],
+                    velocity_m_per_s: 0.8,
+                    peak_uv: 20.0,
+                    branches: Vec::new(),
+                });
                 UnitSpec {
-                    x_um: e.x_um + 25.0 * (rng.uniform() - 0.5),
-                    y_um: e.y_um + 25.0 * (rng.uniform() - 0.5),
+                    x_um,
+                    y_um,
                     z_um: 20.0 + 15.0 * rng.uniform(),
                     peak_uv,
                     rate_hz: 2.0 + 10.0 * ((i * 7) % 12) as f64 / 11.0,
                     burst_probability: if i % 4 == 0 { 0.1 } else { 0.0 },
                     trough_ms: 0.10 + 0.06 * rng.uniform(),
-                    axon: None,
+                    axon,
                 }
             })
             .collect();
@@ -140,19 +209,25 @@ impl Scenario {
         }
     }
 
-    /// A dense 16×16 patch at 17.5 µm pitch, 20 kHz: six units, two of
-    /// whose axons run straight across the patch at 0.5 and 1.0 m/s.
+    /// A dense 16×16 patch at 17.5 µm pitch, 20 kHz: six units, three with
+    /// axons across the patch: straight at 0.5 m/s, curved at 1.0 m/s, and
+    /// forked in two at 0.3 m/s.
     pub fn dense_axons(duration_s: f64, seed: u64) -> Scenario {
         let electrodes = grid(16, 16, 17.5);
         let mut rng = TestRng::new(seed ^ 0x5EED_0002);
         let positions = [(40.0, 40.0), (220.0, 60.0), (130.0, 200.0), (60.0, 230.0), (200.0, 210.0), (140.0, 110.0)];
         let peaks = [140.0, 110.0, 95.0, 80.0, 70.0, 120.0];
         let axons = [
-            Some(Axon { path_um: vec![(40.0, 40.0), (250.0, 180.0)], velocity_m_per_s: 0.5, peak_uv: 25.0 }),
-            Some(Axon { path_um: vec![(220.0, 60.0), (30.0, 150.0)], velocity_m_per_s: 1.0, peak_uv: 25.0 }),
+            Some(Axon::straight((40.0, 40.0), (250.0, 180.0), 0.5, 25.0)),
+            Some(Axon::curved((220.0, 60.0), (60.0, 40.0), (30.0, 170.0), 1.0, 25.0)),
             None,
             None,
-            None,
+            Some(Axon {
+                path_um: vec![(200.0, 210.0), (150.0, 170.0), (155.0, 30.0)],
+                velocity_m_per_s: 0.3,
+                peak_uv: 25.0,
+                branches: vec![(1, vec![(20.0, 170.0)])],
+            }),
             None,
         ];
         let units = positions
@@ -224,26 +299,7 @@ pub struct Template {
 pub fn render_template(unit: &UnitSpec, electrodes: &[Electrode], sample_rate_hz: f64) -> Template {
     let frame_ms = 1e3 / sample_rate_hz;
     let pre_frames = (1.0 / frame_ms).ceil() as usize;
-    // Axon sources every AXON_STEP_UM along the path, with their delays.
-    let mut axon_sources: Vec<(f64, f64, f64)> = Vec::new(); // (x, y, delay_ms)
-    let mut axon_ms = 0.0f64;
-    if let Some(axon) = &unit.axon {
-        let step = AXON_STEP_UM;
-        let mut travelled = 0.0;
-        for pair in axon.path_um.windows(2) {
-            let ((x0, y0), (x1, y1)) = (pair[0], pair[1]);
-            let length = (x1 - x0).hypot(y1 - y0);
-            let n = (length / step).ceil() as usize;
-            for i in 0..n {
-                let f = (i as f64 + 0.5) / n as f64;
-                let s = travelled + f * length;
-                // µm / (m/s) = µs; ÷1000 for ms.
-                axon_sources.push((x0 + f * (x1 - x0), y0 + f * (y1 - y0), s / axon.velocity_m_per_s / 1e3));
-            }
-            travelled += length;
-        }
-        axon_ms = travelled / axon.velocity_m_per_s / 1e3;
-    }
+    let (axon_sources, axon_ms) = unit.axon.as_ref().map_or((Vec::new(), 0.0), |a| a.sources(AXON_STEP_UM));
     let post_frames = ((2.5 + axon_ms) / frame_ms).ceil() as usize;
     let n = pre_frames + post_frames;
     let distance = |e: &Electrode, x: f64, y: f64, z: f64| ((e.x_um - x).powi(2) + (e.y_um - y).powi(2) + z * z).sqrt();

@@ -6,12 +6,17 @@
 /// Whether item `index` belongs to the subset of probability `probability`
 /// drawn with `seed`; `salt` separates independent subsets of one stage.
 pub fn keep(seed: u64, salt: u64, index: u64, probability: f64) -> bool {
+    uniform(seed, salt, index) < probability
+}
+
+/// A number in [0, 1) that depends only on (seed, salt, index).
+pub fn uniform(seed: u64, salt: u64, index: u64) -> f64 {
     // SplitMix64 finaliser over the combined key.
     let mut z = seed ^ salt.wrapping_mul(0xD1B5_4A32_D192_ED03) ^ index.wrapping_mul(0x9E37_79B9_7F4A_7C15);
     z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
     z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
     z ^= z >> 31;
-    ((z >> 11) as f64 / (1u64 << 53) as f64) < probability
+    (z >> 11) as f64 / (1u64 << 53) as f64
 }
 
 #[cfg(test)]

@@ -7,18 +7,26 @@
 //!    one pass over the recording; per electrode the averaged trough, its
 //!    latency after the spike (parabolic sub-sample interpolation) and
 //!    whether it stands out of the noise (`footprints.parquet`);
-//! 2. tracking ([`fit::track`]): significant electrodes in order of
-//!    latency, each linked to the nearest earlier one; the tree's branches
-//!    ([`fit::branches`]);
-//! 3. per branch, latency against path length by Theil–Sen with Sen's 95 %
-//!    interval ([`fit::theil_sen`]); velocity = path ÷ latency
-//!    (1 µm/ms = 10⁻³ m/s). A branch is reported only when it is long
-//!    enough, its latency rises with path length beyond doubt (the
-//!    interval's lower bound above 0) and by at least
-//!    `min_latency_span_ms`, and the line fits (`min_r_squared`): tracking
-//!    orders electrodes by latency, so any footprint yields a rising
-//!    sequence, and these tests keep somatic footprints out. A unit without
-//!    a measurable axon has no row (`propagation.parquet`).
+//! 2. the footprint's ridge ([`fit::ridge`]): the significant electrodes
+//!    that are the largest across the direction of travel (the latency
+//!    gradient), so that a footprint spread sideways by the axon's field
+//!    is timed along the axon, not across a band;
+//! 3. tracking ([`fit::track`]): from the largest trough (the soma), ridge
+//!    electrodes in order of latency, each linked to the nearest one
+//!    already placed; the tree's branches ([`fit::branches`]); distance
+//!    along a branch is measured on the chain smoothed over ±2 electrodes
+//!    ([`fit::smoothed_arc_length`]);
+//! 4. per branch, latency against distance by Theil–Sen
+//!    ([`fit::theil_sen`]); velocity = distance ÷ latency (1 µm/ms =
+//!    10⁻³ m/s). A branch is reported only when it is long enough, its
+//!    latency rises with distance beyond doubt (Sen's interval above 0) and
+//!    by at least `min_latency_span_ms`, and the line fits
+//!    (`min_r_squared`); electrodes within `soma_exclusion_um` of the soma
+//!    are not timed. A unit without a measurable axon has no row;
+//! 5. the 95 % interval: a bootstrap over the averaged spikes
+//!    ([`bootstrap_intervals`], a second pass that reads only a few samples
+//!    around each timed electrode's trough), which measures the noise of
+//!    the latencies, not the bias of the method (`propagation.parquet`).
 
 pub mod fit;
 pub mod params;
@@ -27,7 +35,9 @@ use arrow_array::{ArrayRef, BooleanArray, Float64Array, Int32Array, Int64Array, 
 use arrow_schema::{DataType, Field, Schema};
 use fit::Node;
 use params::PropagationParams;
+use rayon::prelude::*;
 use spikeyard_contract::events::{for_each_event_window, EventRecord};
+use spikeyard_contract::sampling::uniform;
 use spikeyard_contract::table::{column, read_table, write_table};
 use spikeyard_contract::{ContractError, Recording, StageFailure, StageReport, StageRequest};
 use std::path::Path;
@@ -94,23 +104,8 @@ pub fn footprints(
                 .map(|channel| {
                     let average: Vec<f64> =
                         sum[channel * length..(channel + 1) * length].iter().map(|v| v / n.max(1) as f64).collect();
-                    let (k, trough) =
-                        average
-                            .iter()
-                            .enumerate()
-                            .fold((0, f64::INFINITY), |b, (i, &v)| if v < b.1 { (i, v) } else { b });
-                    let offset = if k > 0 && k + 1 < length {
-                        let (a, b, c) = (average[k - 1], average[k], average[k + 1]);
-                        let curvature = a - 2.0 * b + c;
-                        if curvature > 0.0 {
-                            (0.5 * (a - c) / curvature).clamp(-0.5, 0.5)
-                        } else {
-                            0.0
-                        }
-                    } else {
-                        0.0
-                    };
-                    let latency_ms = (k as f64 + offset - before as f64) / fs * 1e3;
+                    let (position, trough) = trough(&average);
+                    let latency_ms = (position - before as f64) / fs * 1e3;
                     let standard_error =
                         noise_uv.get(channel).copied().unwrap_or(f64::INFINITY) / (n.max(1) as f64).sqrt();
                     (trough, latency_ms, n > 0 && -trough > params.significance_sigma * standard_error)
@@ -120,6 +115,29 @@ pub fn footprints(
         })
         .collect())
 }
+
+/// The trough of a waveform: its position in samples, refined by a
+/// parabola through the lowest sample and its neighbours, and its value.
+fn trough(values: &[f64]) -> (f64, f64) {
+    let (k, lowest) = values.iter().enumerate().fold((0, f64::INFINITY), |b, (i, &v)| if v < b.1 { (i, v) } else { b });
+    let offset = if k > 0 && k + 1 < values.len() {
+        let (a, b, c) = (values[k - 1], values[k], values[k + 1]);
+        let curvature = a - 2.0 * b + c;
+        if curvature > 0.0 {
+            (0.5 * (a - c) / curvature).clamp(-0.5, 0.5)
+        } else {
+            0.0
+        }
+    } else {
+        0.0
+    };
+    (k as f64 + offset, lowest)
+}
+
+/// A footprint electrode is off the axon's ridge when an electrode beside
+/// it across the axon, at most this many pitches away (the next electrode,
+/// straight or diagonal), has a larger trough.
+pub const ACROSS_PITCHES: f64 = 1.5;
 
 /// One measured branch of one unit.
 #[derive(Debug, Clone, PartialEq)]
@@ -132,70 +150,94 @@ pub struct Branch {
     pub r_squared: f64,
     pub ci_low: f64,
     pub ci_high: f64,
+    /// The electrodes timed for the fit: channel and distance along the
+    /// axon from the footprint's root (its largest trough), µm.
+    pub timed: Vec<(usize, f64)>,
 }
 
-/// The branches of one footprint with a measurable velocity.
+// slope in ms/µm; 1 µm/ms = 1e-3 m/s.
+fn speed(slope_ms_per_um: f64) -> f64 {
+    1e-3 / slope_ms_per_um
+}
+
+/// The branches of one footprint with a measurable velocity; `positions`
+/// by channel; electrodes within `link_radius_pitches` electrode pitches
+/// (`pitch_um`) are neighbours when finding
+/// the footprint's ridge (where only those within [`ACROSS_PITCHES`]
+/// electrode pitches are compared across the axon) and when tracking the
+/// axon along it. The 95 % interval
+/// is Sen's rank interval of the slope until [`bootstrap_intervals`]
+/// replaces it.
 pub fn measure_branches(
     unit: usize,
     footprint: &Footprint,
-    recording: &Recording,
+    positions: &[(f64, f64)],
+    pitch_um: f64,
     params: &PropagationParams,
 ) -> Vec<Branch> {
+    let radius_um = params.link_radius_pitches * pitch_um;
     if footprint.n_spikes < params.min_spikes {
         return Vec::new();
     }
-    let nodes: Vec<Node> = footprint
+    let significant: Vec<Node> = footprint
         .electrodes
         .iter()
         .enumerate()
         .filter(|(_, e)| e.2)
         .map(|(channel, e)| Node {
             channel,
-            x_um: recording.electrodes[channel].x_um,
-            y_um: recording.electrodes[channel].y_um,
+            x_um: positions[channel].0,
+            y_um: positions[channel].1,
             latency_ms: e.1,
+            amplitude_uv: e.0,
         })
         .collect();
+    let on_ridge = fit::ridge(&significant, radius_um, ACROSS_PITCHES * pitch_um);
+    let nodes: Vec<Node> = significant.into_iter().zip(on_ridge).filter(|(_, r)| *r).map(|(n, _)| n).collect();
     if nodes.len() < params.min_electrodes {
         return Vec::new();
     }
-    let (parent, tree_path) = fit::track(&nodes, params.link_radius_um);
-    let Some(root) = tree_path.iter().position(|&p| p == 0.0) else { return Vec::new() };
-    let along = fit::geodesic(&nodes, root, params.link_radius_um);
+    let (parent, tree_path) = fit::track(&nodes, radius_um);
     let mut result: Vec<Branch> = Vec::new();
     let mut kept_nodes: Vec<usize> = Vec::new();
     for segment in fit::branches(&parent, &tree_path) {
-        let start = along[segment[0]];
+        // Distances along the chain from the root to the branch's end.
+        let mut chain = Vec::new();
+        let mut node = segment[0];
+        while let Some(p) = parent[node] {
+            chain.push(p);
+            node = p;
+        }
+        chain.reverse();
+        let offset = chain.len();
+        chain.extend(&segment);
+        let points: Vec<(f64, f64)> = chain.iter().map(|&i| (nodes[i].x_um, nodes[i].y_um)).collect();
+        let along = &fit::smoothed_arc_length(&points, 2)[offset..];
         let end = *segment.last().unwrap_or(&segment[0]);
-        let length = along[end] - start;
-        if segment.len() < params.min_electrodes || length.is_nan() || length < params.min_path_um {
+        let length = along[along.len() - 1] - along[0];
+        if segment.len() < params.min_electrodes || length < params.min_path_um {
             continue;
         }
-        // A side branch must reach away from the branches already kept, not
-        // run beside them through a broad footprint.
-        let reach = kept_nodes
-            .iter()
-            .map(|&k| (nodes[end].x_um - nodes[k].x_um).hypot(nodes[end].y_um - nodes[k].y_um))
-            .fold(f64::INFINITY, f64::min);
-        if reach < 2.0 * params.link_radius_um {
+        // A side branch must reach away from the branches already kept.
+        let reach = kept_nodes.iter().map(|&k| nodes[end].distance_to(&nodes[k])).fold(f64::INFINITY, f64::min);
+        if reach < 2.0 * radius_um {
             continue;
         }
         // Electrodes near the root see the soma's spike, which comes at
         // once everywhere around it; only the axon beyond is timed.
-        let timed: Vec<usize> = segment.iter().copied().filter(|&i| along[i] >= params.soma_exclusion_um).collect();
+        let timed: Vec<(usize, f64)> =
+            segment.iter().zip(along).filter(|(_, &a)| a >= params.soma_exclusion_um).map(|(&i, &a)| (i, a)).collect();
         if timed.len() < params.min_electrodes {
             continue;
         }
-        let x: Vec<f64> = timed.iter().map(|&i| along[i] - start).collect();
-        let y: Vec<f64> = timed.iter().map(|&i| nodes[i].latency_ms).collect();
+        let x: Vec<f64> = timed.iter().map(|t| t.1).collect();
+        let y: Vec<f64> = timed.iter().map(|t| nodes[t.0].latency_ms).collect();
         let Some(line) = fit::theil_sen(&x, &y) else { continue };
         let span = line.slope * length;
         if line.slope_low <= 0.0 || span < params.min_latency_span_ms || line.r_squared < params.min_r_squared {
             continue;
         }
         kept_nodes.extend(&segment);
-        // slope in ms/µm; 1 µm/ms = 1e-3 m/s.
-        let speed = |slope: f64| 1e-3 / slope;
         result.push(Branch {
             unit,
             branch: result.len(),
@@ -205,9 +247,130 @@ pub fn measure_branches(
             r_squared: line.r_squared,
             ci_low: speed(line.slope_high),
             ci_high: speed(line.slope_low),
+            timed: timed.iter().map(|&(i, a)| (nodes[i].channel, a)).collect(),
         });
     }
     result
+}
+
+/// Samples either side of a timed electrode's trough kept per spike for the bootstrap.
+const BOOTSTRAP_HALF_WIDTH: usize = 4;
+
+/// Replace each branch's interval by a bootstrap over spikes: a second
+/// pass keeps, for every spike of `spikes` (unit, sample; ascending
+/// sample) whose unit has a branch, a few samples around the footprint's
+/// trough on the timed electrodes; each of `params.bootstrap_resamples`
+/// resamples (with replacement, seeded) re-averages them, re-times the
+/// troughs and refits the Theil–Sen slope on the same distances. The
+/// interval is the 2.5 and 97.5 percentiles of the slope, as velocities
+/// (an upper bound is infinite when the slope's lower percentile is not
+/// above 0).
+///
+/// # Errors
+/// Reading the recording fails.
+pub fn bootstrap_intervals(
+    recording: &Recording,
+    spikes: &[(usize, u64)],
+    prints: &[Footprint],
+    branches: &mut [Branch],
+    params: &PropagationParams,
+    seed: u64,
+    origin: &Path,
+) -> Result<(), StageFailure> {
+    if params.bootstrap_resamples == 0 || branches.is_empty() {
+        return Ok(());
+    }
+    let fs = recording.sample_rate_hz;
+    let h = BOOTSTRAP_HALF_WIDTH as i64;
+    let width = 2 * BOOTSTRAP_HALF_WIDTH + 1;
+    // Per unit with a branch: its timed channels and their trough offsets
+    // from the spike (samples).
+    let mut wanted: Vec<Option<Vec<(usize, i64)>>> = vec![None; prints.len()];
+    for b in branches.iter() {
+        let list = wanted[b.unit].get_or_insert_with(Vec::new);
+        for &(channel, _) in &b.timed {
+            let offset = (prints[b.unit].electrodes[channel].1 * 1e-3 * fs).round() as i64;
+            if !list.iter().any(|c| c.0 == channel) {
+                list.push((channel, offset));
+            }
+        }
+    }
+    let reach = wanted.iter().flatten().flatten().map(|c| c.1.unsigned_abs() as usize).max().unwrap_or(0);
+    let mut snippets: Vec<Vec<f32>> = vec![Vec::new(); prints.len()];
+    let events = spikes
+        .iter()
+        .enumerate()
+        .filter(|(_, s)| wanted[s.0].is_some())
+        .map(|(i, &(_, sample))| Ok(EventRecord { index: i as u64, sample, channel: 0, amplitude_uv: 0.0 }));
+    let chunk_frames = (params.chunk_seconds * fs).round().max(1.0) as usize;
+    let n_channels = recording.n_channels;
+    let margin = reach + BOOTSTRAP_HALF_WIDTH + 1;
+    for_each_event_window(recording, events, origin, chunk_frames, margin, |window| {
+        for event in window.events {
+            let unit = spikes[event.index as usize].0;
+            for &(channel, offset) in wanted[unit].iter().flatten() {
+                for d in -h..=h {
+                    snippets[unit].push(window.value(event.sample as i64 + offset + d, channel, n_channels));
+                }
+            }
+        }
+        Ok::<(), StageFailure>(())
+    })?;
+    let intervals: Vec<Option<Vec<(f64, f64)>>> = (0..prints.len())
+        .into_par_iter()
+        .map(|unit| {
+            let channels = wanted[unit].as_ref()?;
+            let row = channels.len() * width;
+            let n = snippets[unit].len() / row;
+            if n == 0 {
+                return None;
+            }
+            let mine: Vec<&Branch> = branches.iter().filter(|b| b.unit == unit).collect();
+            let mut slopes: Vec<Vec<f64>> = vec![Vec::new(); mine.len()];
+            let mut average = vec![0.0f64; row];
+            let salt = 0xB007_0000_0000 ^ (unit as u64) << 20;
+            for resample in 0..params.bootstrap_resamples as u64 {
+                average.iter_mut().for_each(|v| *v = 0.0);
+                for i in 0..n as u64 {
+                    let pick = (uniform(seed, salt ^ resample, i) * n as f64) as usize;
+                    for (a, &v) in average.iter_mut().zip(&snippets[unit][pick.min(n - 1) * row..][..row]) {
+                        *a += v as f64;
+                    }
+                }
+                let latency = |channel: usize| {
+                    let c = channels.iter().position(|c| c.0 == channel).expect("timed channels were collected");
+                    let (position, _) = trough(&average[c * width..(c + 1) * width]);
+                    (channels[c].1 as f64 + position - h as f64) / fs * 1e3
+                };
+                for (branch, out) in mine.iter().zip(&mut slopes) {
+                    let x: Vec<f64> = branch.timed.iter().map(|t| t.1).collect();
+                    let y: Vec<f64> = branch.timed.iter().map(|t| latency(t.0)).collect();
+                    if let Some(line) = fit::theil_sen(&x, &y) {
+                        out.push(line.slope);
+                    }
+                }
+            }
+            Some(
+                slopes
+                    .into_iter()
+                    .map(|mut s| {
+                        s.sort_by(f64::total_cmp);
+                        let at = |q: f64| s[((q * (s.len() - 1) as f64).round() as usize).min(s.len() - 1)];
+                        let (low, high) = (at(0.025), at(0.975));
+                        (speed(high), if low > 0.0 { speed(low) } else { f64::INFINITY })
+                    })
+                    .collect(),
+            )
+        })
+        .collect();
+    let mut next = vec![0usize; prints.len()];
+    for b in branches.iter_mut() {
+        if let Some(list) = &intervals[b.unit] {
+            (b.ci_low, b.ci_high) = list[next[b.unit]];
+            next[b.unit] += 1;
+        }
+    }
+    Ok(())
 }
 
 /// Run the stage on a request.
@@ -276,8 +439,14 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     .expect("footprint columns match their schema");
     write_table(&request.output(FOOTPRINTS_TABLE), &footprint_batch, &metadata)?;
 
-    let found: Vec<Branch> =
-        prints.iter().enumerate().flat_map(|(unit, p)| measure_branches(unit, p, &recording, &params)).collect();
+    let positions: Vec<(f64, f64)> = recording.electrodes.iter().map(|e| (e.x_um, e.y_um)).collect();
+    let pitch_um = fit::pitch(&positions);
+    let mut found: Vec<Branch> = prints
+        .iter()
+        .enumerate()
+        .flat_map(|(unit, p)| measure_branches(unit, p, &positions, pitch_um, &params))
+        .collect();
+    bootstrap_intervals(&recording, &chosen, &prints, &mut found, &params, request.seed, &spikes_path)?;
     let [low, high] = params.typical_range_m_per_s;
     let propagation = RecordBatch::try_new(
         Arc::new(Schema::new(vec![

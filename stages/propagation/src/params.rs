@@ -14,13 +14,15 @@ pub struct PropagationParams {
     /// An electrode is significant when its averaged trough exceeds this many
     /// standard errors (its MAD noise σ ÷ √spikes). Default 6.
     pub significance_sigma: f64,
-    /// Footprint electrodes closer than this are linked when tracking the axon, µm. Default 40.
-    pub link_radius_um: f64,
+    /// Footprint electrodes closer than this many electrode pitches (the
+    /// median nearest-neighbour distance) are neighbours: when finding the
+    /// footprint's ridge and when tracking the axon along it. Default 2.2.
+    pub link_radius_pitches: f64,
     /// A branch needs at least this many electrodes ... Default 6.
     pub min_electrodes: usize,
     /// ... and at least this path length, µm. Default 60.
     pub min_path_um: f64,
-    /// Electrodes closer than this to the footprint's earliest electrode
+    /// Electrodes closer than this to the footprint's largest trough
     /// (along the footprint) are left out of the timing: the soma's spike
     /// reaches them all at once, µm. Default 40.
     pub soma_exclusion_um: f64,
@@ -34,6 +36,9 @@ pub struct PropagationParams {
     /// Velocities outside this band (m/s) are flagged `outside_typical_range`
     /// (unmyelinated axons: about 0.1–2 m/s, common practice). Default [0.1, 2.0].
     pub typical_range_m_per_s: [f64; 2],
+    /// Bootstrap resamples over spikes for each branch's 95 % interval; 0
+    /// keeps Sen's rank interval of the Theil–Sen slope. Default 200.
+    pub bootstrap_resamples: usize,
     /// Core length of a processing chunk, s. Default 1.
     pub chunk_seconds: f64,
 }
@@ -45,7 +50,7 @@ impl Default for PropagationParams {
             before_ms: 1.0,
             after_ms: 4.0,
             significance_sigma: 6.0,
-            link_radius_um: 40.0,
+            link_radius_pitches: 2.2,
             min_electrodes: 6,
             min_path_um: 60.0,
             soma_exclusion_um: 40.0,
@@ -53,6 +58,7 @@ impl Default for PropagationParams {
             min_r_squared: 0.8,
             min_spikes: 30,
             typical_range_m_per_s: [0.1, 2.0],
+            bootstrap_resamples: 200,
             chunk_seconds: 1.0,
         }
     }
@@ -69,7 +75,7 @@ impl PropagationParams {
             ("before_ms", self.before_ms),
             ("after_ms", self.after_ms),
             ("significance_sigma", self.significance_sigma),
-            ("link_radius_um", self.link_radius_um),
+            ("link_radius_pitches", self.link_radius_pitches),
             ("chunk_seconds", self.chunk_seconds),
         ] {
             if !(value.is_finite() && value > 0.0) {
