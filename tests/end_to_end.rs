@@ -155,6 +155,51 @@ fn detection_on_the_default_scenario_finds_every_unit_above_five_sigma() {
     let axon = &measured[0];
     assert!(axon.len() == 1 && (axon[0].1 - 0.8).abs() < 0.08, "{axon:?}");
     assert_eq!(with_rows.len(), 1, "{with_rows:?}");
+
+    // Issue 7: the report page is well-formed, every figure parses, and the
+    // expected figures are there: the array map, five per shown unit (the
+    // ten sorted units not flagged small), a latency map for the axon.
+    let shown: Vec<i32> =
+        comparison.sorted_best_accuracy.keys().filter(|u| !small.contains(u)).map(|&u| u as i32).collect();
+    check_report(&out, &shown, &with_rows.iter().copied().collect::<Vec<_>>());
+}
+
+/// The report page parses as XML; every `<svg>` has a viewBox and a title
+/// and parses on its own; the figures of `units` and the latency maps of
+/// `axons` are present.
+fn check_report(out: &Path, units: &[i32], axons: &[i32]) {
+    let page = std::fs::read_to_string(out.join("report.html")).expect("report.html is published");
+    let document = roxmltree::Document::parse_with_options(
+        &page,
+        roxmltree::ParsingOptions { allow_dtd: true, ..Default::default() },
+    )
+    .expect("report.html is well-formed");
+    let figures: Vec<roxmltree::Node> =
+        document.descendants().filter(|n| n.has_tag_name(("http://www.w3.org/2000/svg", "svg"))).collect();
+    let ids: std::collections::BTreeSet<&str> = figures.iter().filter_map(|f| f.attribute("id")).collect();
+    for figure in &figures {
+        assert!(figure.attribute("viewBox").is_some(), "{:?} has no viewBox", figure.attribute("id"));
+        assert!(figure.children().any(|c| c.has_tag_name(("http://www.w3.org/2000/svg", "title"))));
+        roxmltree::Document::parse(&page[figure.range()]).expect("each figure parses alone");
+    }
+    assert!(ids.contains("array-map"), "{ids:?}");
+    for unit in units {
+        for kind in ["waveforms", "isi", "correlogram", "amplitude", "rate"] {
+            assert!(ids.contains(format!("unit-{unit}-{kind}").as_str()), "unit {unit} {kind} missing: {ids:?}");
+        }
+    }
+    for unit in axons {
+        assert!(ids.contains(format!("unit-{unit}-latency-map").as_str()), "unit {unit} latency map missing: {ids:?}");
+    }
+    // Self-contained: nothing loaded from elsewhere.
+    for tag in ["script", "link", "img", "iframe"] {
+        assert!(!document.descendants().any(|n| n.tag_name().name() == tag), "the page has a <{tag}>");
+    }
+    assert!(
+        !document.descendants().any(|n| n.attributes().any(|a| a.name() == "src" || a.name() == "href")),
+        "the page refers to another file"
+    );
+    assert!(!page.contains("url("), "the page refers to an outside resource");
 }
 
 #[test]
@@ -195,7 +240,7 @@ fn cache_reruns_exactly_the_changed_stage_and_what_follows() {
     let simulated = write_recording(&Scenario::sparse_grid(4.0, 3), &dir.path().join("rec")).unwrap();
     let out = dir.path().join("out");
     assert_success(&run(&simulated.description, &out, None));
-    assert_eq!(stages_run(&out), ["filter", "detect", "features", "cluster", "measures", "propagation"]);
+    assert_eq!(stages_run(&out), ["filter", "detect", "features", "cluster", "measures", "propagation", "report"]);
     let events_before = std::fs::read(out.join("events.parquet")).unwrap();
 
     let second = run(&simulated.description, &out, None);
@@ -207,7 +252,7 @@ fn cache_reruns_exactly_the_changed_stage_and_what_follows() {
     let config = dir.path().join("order4.toml");
     std::fs::write(&config, default_config_with("order = 3", "order = 4")).unwrap();
     assert_success(&run(&simulated.description, &out, Some(&config)));
-    assert_eq!(stages_run(&out), ["filter", "detect", "features", "cluster", "measures", "propagation"]);
+    assert_eq!(stages_run(&out), ["filter", "detect", "features", "cluster", "measures", "propagation", "report"]);
 
     let config = dir.path().join("threshold.toml");
     std::fs::write(
@@ -216,7 +261,7 @@ fn cache_reruns_exactly_the_changed_stage_and_what_follows() {
     )
     .unwrap();
     assert_success(&run(&simulated.description, &out, Some(&config)));
-    assert_eq!(stages_run(&out), ["detect", "features", "cluster", "measures", "propagation"]);
+    assert_eq!(stages_run(&out), ["detect", "features", "cluster", "measures", "propagation", "report"]);
 
     // The manifest records what went in and what came out.
     let manifest: serde_json::Value =
@@ -236,7 +281,7 @@ fn cache_reruns_exactly_the_changed_stage_and_what_follows() {
     bytes[1001] ^= 0x40;
     std::fs::write(&data, bytes).unwrap();
     assert_success(&run(&simulated.description, &out, Some(&config)));
-    assert_eq!(stages_run(&out), ["filter", "detect", "features", "cluster", "measures", "propagation"]);
+    assert_eq!(stages_run(&out), ["filter", "detect", "features", "cluster", "measures", "propagation", "report"]);
 }
 
 // STYLE.md §5 and the brief: the same inputs give the same tables whatever the thread count.
@@ -825,4 +870,6 @@ fn curved_and_forked_axons_on_the_dense_scenario() {
     for truth in [2, 3, 5] {
         assert!(measured[truth].is_empty(), "unit {truth} has no axon but has a row\n{text}");
     }
+    let (_, with_rows) = velocities_by_truth(&out, &comparison);
+    check_report(&out, &[], &with_rows.iter().copied().collect::<Vec<_>>());
 }

@@ -158,7 +158,7 @@ mod tests {
     fn default_config_parses_with_filter_then_detect() {
         let config = PipelineConfig::load(None).unwrap();
         let names: Vec<_> = config.stages.iter().map(|s| s.name.as_str()).collect();
-        assert_eq!(names, vec!["filter", "detect", "features", "cluster", "measures", "propagation"]);
+        assert_eq!(names, vec!["filter", "detect", "features", "cluster", "measures", "propagation", "report"]);
     }
 
     // The default config file must say exactly what the stages' defaults are.
@@ -183,6 +183,9 @@ mod tests {
         let propagation: spikeyard_propagation::params::PropagationParams =
             serde_json::from_value(config.stages[5].params.clone()).unwrap();
         assert_eq!(propagation, spikeyard_propagation::params::PropagationParams::default());
+        let report: spikeyard_report::params::ReportParams =
+            serde_json::from_value(config.stages[6].params.clone()).unwrap();
+        assert_eq!(report, spikeyard_report::params::ReportParams::default());
         assert_eq!(config.run, RunSettings::default());
         // And it lists every parameter, so the file documents them all.
         let listed = |i: usize| config.stages[i].params.as_object().unwrap().len();
@@ -198,6 +201,11 @@ mod tests {
             listed(4),
             all(serde_json::to_value(spikeyard_measures::params::MeasuresParams::default()).unwrap())
         );
+        assert_eq!(
+            listed(5),
+            all(serde_json::to_value(spikeyard_propagation::params::PropagationParams::default()).unwrap())
+        );
+        assert_eq!(listed(6), all(serde_json::to_value(spikeyard_report::params::ReportParams::default()).unwrap()));
     }
 
     #[test]

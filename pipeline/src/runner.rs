@@ -147,11 +147,13 @@ pub fn execute(plan: &Plan, mode: ProgressMode) -> anyhow::Result<RunRecord> {
     Ok(record)
 }
 
-/// Link every Parquet table the stages wrote into the output folder (a
-/// later stage's table of the same name wins).
+/// Link every Parquet table and HTML page the stages wrote into the output
+/// folder (a later stage's file of the same name wins).
 fn publish(plan: &Plan, artifacts: &BTreeMap<String, PathBuf>) -> anyhow::Result<Vec<String>> {
     let mut published = Vec::new();
-    for (name, source) in artifacts.iter().filter(|(n, _)| n.ends_with(".parquet") && !n.contains('/')) {
+    for (name, source) in
+        artifacts.iter().filter(|(n, _)| (n.ends_with(".parquet") || n.ends_with(".html")) && !n.contains('/'))
+    {
         let target = plan.output_dir.join(name);
         let temporary = plan.output_dir.join(format!(".{name}.partial"));
         let _ = std::fs::remove_file(&temporary);

@@ -74,6 +74,14 @@ pub const BUILTIN_STAGES: &[BuiltinStage] = &[
             p.check().map(|_| Vec::new()).map_err(|e| format!("params: {e}"))
         },
     },
+    BuiltinStage {
+        name: "report",
+        about: "one self-contained HTML page with the run, the array, the units and their axons",
+        check: |params, _rate| {
+            let p: spikeyard_report::params::ReportParams = parse_params(params)?;
+            p.check().map(|_| Vec::new()).map_err(|e| format!("params: {e}"))
+        },
+    },
 ];
 
 pub fn builtin(name: &str) -> Option<&'static BuiltinStage> {

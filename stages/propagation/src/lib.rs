@@ -26,7 +26,9 @@
 //! 5. the 95 % interval: a bootstrap over the averaged spikes
 //!    ([`bootstrap_intervals`], a second pass that reads only a few samples
 //!    around each timed electrode's trough), which measures the noise of
-//!    the latencies, not the bias of the method (`propagation.parquet`).
+//!    the latencies, not the bias of the method (`propagation.parquet`,
+//!    and the timed electrodes of each branch in
+//!    `propagation_paths.parquet`).
 
 pub mod fit;
 pub mod params;
@@ -48,6 +50,7 @@ pub const VERSION: &str = env!("CARGO_PKG_VERSION");
 
 pub const FOOTPRINTS_TABLE: &str = "footprints.parquet";
 pub const PROPAGATION_TABLE: &str = "propagation.parquet";
+pub const PATHS_TABLE: &str = "propagation_paths.parquet";
 
 /// A unit's footprint on every electrode.
 #[derive(Debug, Clone, PartialEq)]
@@ -474,6 +477,31 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     )
     .expect("propagation columns match their schema");
     write_table(&request.output(PROPAGATION_TABLE), &propagation, &metadata)?;
+    // The electrodes each branch was timed on, for maps and refits.
+    let path_rows: Vec<(&Branch, usize, f64)> =
+        found.iter().flat_map(|b| b.timed.iter().map(move |&(channel, along)| (b, channel, along))).collect();
+    let paths = RecordBatch::try_new(
+        Arc::new(Schema::new(vec![
+            Field::new("unit_id", DataType::Int32, false),
+            Field::new("branch", DataType::Int32, false),
+            Field::new("channel", DataType::Int32, false),
+            Field::new("x_um", DataType::Float64, false),
+            Field::new("y_um", DataType::Float64, false),
+            Field::new("distance_um", DataType::Float64, false),
+            Field::new("latency_ms", DataType::Float64, false),
+        ])),
+        vec![
+            Arc::new(Int32Array::from_iter_values(path_rows.iter().map(|r| r.0.unit as i32))) as ArrayRef,
+            Arc::new(Int32Array::from_iter_values(path_rows.iter().map(|r| r.0.branch as i32))),
+            Arc::new(Int32Array::from_iter_values(path_rows.iter().map(|r| r.1 as i32))),
+            Arc::new(Float64Array::from_iter_values(path_rows.iter().map(|r| positions[r.1].0))),
+            Arc::new(Float64Array::from_iter_values(path_rows.iter().map(|r| positions[r.1].1))),
+            Arc::new(Float64Array::from_iter_values(path_rows.iter().map(|r| r.2))),
+            Arc::new(Float64Array::from_iter_values(path_rows.iter().map(|r| prints[r.0.unit].electrodes[r.1].1))),
+        ],
+    )
+    .expect("path columns match their schema");
+    write_table(&request.output(PATHS_TABLE), &paths, &metadata)?;
     report.summary.insert("units".into(), n_units.into());
     report.summary.insert("branches".into(), found.len().into());
     Ok(report)
