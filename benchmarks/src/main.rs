@@ -27,6 +27,11 @@ struct Args {
     sample_rate_hz: f64,
     #[arg(long, default_value_t = 60.0)]
     duration_s: f64,
+    /// Skip the numpy/scipy/scikit-learn reference pipeline
+    /// (`benchmarks/reference/pipeline.py`), which otherwise runs on the
+    /// same file when python3 has those packages.
+    #[arg(long)]
+    no_reference: bool,
 }
 
 /// A probe-like layout: two staggered columns per shank row, 20 µm apart.
@@ -124,7 +129,95 @@ fn main() -> anyhow::Result<()> {
         );
     }
     row("whole run (hashing, planning, all stages)", total);
+
+    if args.no_reference {
+        return Ok(());
+    }
+    let truth = recording_dir.join("truth_spikes.parquet");
+    let ours = spikeyard::commands::compare(&out, &truth, 0.5, None)?;
+    match reference(&description, &args.work.join("reference")) {
+        Err(why) => println!("\nreference pipeline skipped: {why}"),
+        Ok((timings, trains, wall)) => {
+            println!("\n### side by side with the numpy/scipy/scikit-learn reference (benchmarks/reference)\n");
+            println!("| step | spikeyard s | reference s | reference ÷ spikeyard |");
+            println!("|---|---|---|---|");
+            let mut sums = (0.0, 0.0);
+            for name in ["filter", "detect", "features", "cluster"] {
+                let mine = record.stages.iter().find(|s| s.name == name).map_or(f64::NAN, |s| s.wall_seconds);
+                let theirs = timings.get(name).copied().unwrap_or(f64::NAN);
+                sums = (sums.0 + mine, sums.1 + theirs);
+                println!("| {name} | {mine:.2} | {theirs:.2} | {:.1} |", theirs / mine);
+            }
+            println!("| filter to cluster | {:.2} | {:.2} | {:.1} |", sums.0, sums.1, sums.1 / sums.0);
+            println!(
+                "| whole run (spikeyard: all stages; reference: whole script) | {total:.2} | {wall:.2} | {:.1} |",
+                wall / total
+            );
+            let window = (0.5e-3 * recording.sample_rate_hz).round() as i64;
+            let theirs = spikeyard::compare::compare(&spikeyard::compare::read_trains(&truth)?, &trains, window);
+            let agreement = spikeyard::compare::compare(
+                &spikeyard::compare::read_trains(&out.join("spikes.parquet"))?,
+                &trains,
+                window,
+            );
+            let summary = |c: &spikeyard::compare::Comparison| {
+                let found = c.truth.iter().filter(|m| m.accuracy() >= 0.8).count();
+                let mean = c.truth.iter().map(|m| m.accuracy()).sum::<f64>() / c.truth.len().max(1) as f64;
+                format!("{found} of {} at accuracy ≥ 0.8, mean accuracy {mean:.3}", c.truth.len())
+            };
+            println!("\nsimulated units found: spikeyard {}; reference {}", summary(&ours), summary(&theirs));
+            println!("spikeyard's units found again in the reference's sorting: {}", summary(&agreement));
+        }
+    }
     Ok(())
+}
+
+/// Run the reference pipeline on the recording: its per-step seconds, its
+/// spike trains, and its whole wall time. Err says why it could not run.
+fn reference(
+    description: &std::path::Path,
+    work: &std::path::Path,
+) -> Result<(std::collections::BTreeMap<String, f64>, spikeyard::compare::Trains, f64), String> {
+    let script = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("reference/pipeline.py");
+    let check = std::process::Command::new("python3").args(["-c", "import numpy, scipy, sklearn"]).output();
+    match check {
+        Err(e) => return Err(format!("python3 not found ({e})")),
+        Ok(o) if !o.status.success() => {
+            return Err(format!(
+                "python3 lacks numpy, scipy or scikit-learn ({}); pip install numpy scipy scikit-learn",
+                String::from_utf8_lossy(&o.stderr).lines().last().unwrap_or("")
+            ))
+        }
+        Ok(_) => {}
+    }
+    eprintln!("running the reference pipeline ({}) ...", script.display());
+    let started = Instant::now();
+    let status = std::process::Command::new("python3")
+        .arg(&script)
+        .arg(description)
+        .arg(work)
+        .status()
+        .map_err(|e| format!("cannot start python3: {e}"))?;
+    let wall = started.elapsed().as_secs_f64();
+    if !status.success() {
+        return Err(format!("{} failed ({status})", script.display()));
+    }
+    let timings: std::collections::BTreeMap<String, f64> = std::fs::read_to_string(work.join("timings.json"))
+        .ok()
+        .and_then(|t| serde_json::from_str(&t).ok())
+        .ok_or("timings.json missing or unreadable")?;
+    let text = std::fs::read_to_string(work.join("spikes.csv")).map_err(|e| format!("spikes.csv: {e}"))?;
+    let mut trains = spikeyard::compare::Trains::new();
+    for line in text.lines().skip(1) {
+        let mut parts = line.split(',').map(|p| p.trim().parse::<i64>());
+        if let (Some(Ok(unit)), Some(Ok(sample))) = (parts.next(), parts.next()) {
+            trains.entry(unit).or_default().push(sample);
+        }
+    }
+    for train in trains.values_mut() {
+        train.sort_unstable();
+    }
+    Ok((timings, trains, wall))
 }
 
 fn cpu_model() -> String {
