@@ -519,9 +519,11 @@ with open(filtered, "rb") as f:
     description = tomllib.load(f)
 data = os.path.join(os.path.dirname(filtered), description["data"])
 channels = description["channels"]
-frames = os.path.getsize(data) // (4 * channels)
+code, size = {"i16": ("h", 2), "u16": ("H", 2), "i32": ("i", 4), "f32": ("f", 4), "f64": ("d", 8)}[description["dtype"]]
+gain, offset = description.get("microvolts_per_unit", 1.0), description.get("offset", 0)
+frames = os.path.getsize(data) // (size * channels)
 with open(data, "rb") as f:
-    first = struct.unpack("<%df" % channels, f.read(4 * channels))
+    first = [(v - offset) * gain for v in struct.unpack("<%d%s" % (channels, code), f.read(size * channels))]
 print("spikeyard:progress 1 1 frames", file=sys.stderr)
 summary = {"channels": channels, "frames": frames, "first_frame_uv": list(first),
            "scale": request["params"]["scale"], "events_seen": "events.parquet" in request["artifacts"]}

@@ -578,48 +578,97 @@ impl DescriptionFields<'_> {
     }
 }
 
-/// Writes a time-major f32 microvolt recording (data, electrodes and
+/// How a written recording stores its microvolts.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum Storage {
+    /// 32-bit floats, exact.
+    F32,
+    /// 16-bit integers of `microvolts_per_unit` each, rounded; values
+    /// beyond ±32767 units are clipped (and counted).
+    I16 { microvolts_per_unit: f64 },
+}
+
+/// Writes a time-major microvolt recording (data, electrodes and
 /// description) frame block by frame block. The description is written last,
-/// by [`F32RecordingWriter::finish`], so a half-written recording has none.
-pub struct F32RecordingWriter {
+/// by [`RecordingWriter::finish`], so a half-written recording has none.
+pub struct RecordingWriter {
     folder: PathBuf,
     stem: String,
     data: std::io::BufWriter<File>,
     sample_rate_hz: f64,
     n_channels: usize,
+    storage: Storage,
     frames_written: u64,
+    clipped: u64,
+    bytes: Vec<u8>,
 }
 
-impl F32RecordingWriter {
+impl RecordingWriter {
     /// Start `<folder>/<stem>.bin`, `<stem>.electrodes.csv`; `<stem>.toml` follows at finish.
-    pub fn create(folder: &Path, stem: &str, sample_rate_hz: f64, electrodes: &[Electrode]) -> std::io::Result<Self> {
+    pub fn create(
+        folder: &Path,
+        stem: &str,
+        sample_rate_hz: f64,
+        electrodes: &[Electrode],
+        storage: Storage,
+    ) -> std::io::Result<Self> {
         write_electrodes(&folder.join(format!("{stem}.electrodes.csv")), electrodes)?;
         let data = File::create(folder.join(format!("{stem}.bin")))?;
-        Ok(F32RecordingWriter {
+        Ok(RecordingWriter {
             folder: folder.to_path_buf(),
             stem: stem.to_string(),
             data: std::io::BufWriter::with_capacity(1 << 20, data),
             sample_rate_hz,
             n_channels: electrodes.len(),
+            storage,
             frames_written: 0,
+            clipped: 0,
+            bytes: Vec::new(),
         })
     }
 
-    /// Append time-major frames (`samples.len()` must be a whole number of frames).
+    /// Append time-major frames of microvolts (`samples.len()` must be a
+    /// whole number of frames).
     pub fn write_frames(&mut self, samples: &[f32]) -> std::io::Result<()> {
         use std::io::Write;
         debug_assert_eq!(samples.len() % self.n_channels, 0);
-        let mut bytes = Vec::with_capacity(samples.len() * 4);
-        for v in samples {
-            bytes.extend_from_slice(&v.to_le_bytes());
+        self.bytes.clear();
+        match self.storage {
+            Storage::F32 => {
+                self.bytes.reserve(samples.len() * 4);
+                for v in samples {
+                    self.bytes.extend_from_slice(&v.to_le_bytes());
+                }
+            }
+            Storage::I16 { microvolts_per_unit } => {
+                self.bytes.reserve(samples.len() * 2);
+                let scale = (1.0 / microvolts_per_unit) as f32;
+                // Adding and subtracting 1.5·2²³ rounds an f32 of magnitude
+                // below 2²² to the nearest integer (ties to even) without a
+                // libm call.
+                const ROUNDER: f32 = 12_582_912.0;
+                for v in samples {
+                    let units = v * scale;
+                    if !(-32767.0..=32767.0).contains(&units) {
+                        self.clipped += 1;
+                    }
+                    let rounded = (units.clamp(-32767.0, 32767.0) + ROUNDER) - ROUNDER;
+                    self.bytes.extend_from_slice(&(rounded as i16).to_le_bytes());
+                }
+            }
         }
-        self.data.write_all(&bytes)?;
+        self.data.write_all(&self.bytes)?;
         self.frames_written += (samples.len() / self.n_channels) as u64;
         Ok(())
     }
 
     pub fn frames_written(&self) -> u64 {
         self.frames_written
+    }
+
+    /// Samples clipped to the i16 range so far.
+    pub fn clipped_samples(&self) -> u64 {
+        self.clipped
     }
 
     /// Flush the data and write the description; returns its path.
@@ -629,12 +678,16 @@ impl F32RecordingWriter {
         data.flush()?;
         data.get_ref().sync_all()?;
         let description = self.folder.join(format!("{}.toml", self.stem));
+        let (dtype, microvolts_per_unit) = match self.storage {
+            Storage::F32 => (Dtype::F32, 1.0),
+            Storage::I16 { microvolts_per_unit } => (Dtype::I16, microvolts_per_unit),
+        };
         DescriptionFields {
             data: &format!("{}.bin", self.stem),
             sample_rate_hz: self.sample_rate_hz,
             n_channels: self.n_channels,
-            dtype: Dtype::F32,
-            microvolts_per_unit: 1.0,
+            dtype,
+            microvolts_per_unit,
             offset: 0.0,
             electrodes: &format!("{}.electrodes.csv", self.stem),
         }
@@ -782,6 +835,31 @@ mod transpose_tests {
         for channel in 0..n_channels {
             let strided: Vec<f32> = frames.iter().skip(channel).step_by(n_channels).copied().collect();
             assert_eq!(&columns[channel * n_frames..(channel + 1) * n_frames], &strided[..]);
+        }
+    }
+
+    #[test]
+    fn i16_storage_rounds_to_its_step_and_counts_clipped_samples() {
+        use super::{Dtype, Electrode, Recording, RecordingWriter, Storage};
+        let dir = tempfile::tempdir().unwrap();
+        let electrodes: Vec<Electrode> = (0..2)
+            .map(|channel| Electrode { channel, x_um: channel as f64 * 10.0, y_um: 0.0, label: None, group: None })
+            .collect();
+        let step = 0.1;
+        let mut writer =
+            RecordingWriter::create(dir.path(), "f", 1000.0, &electrodes, Storage::I16 { microvolts_per_unit: step })
+                .unwrap();
+        let samples = [1.234f32, -5.56, 3276.7, -4000.0, 0.04, 0.06];
+        writer.write_frames(&samples).unwrap();
+        assert_eq!(writer.clipped_samples(), 1);
+        let description = writer.finish().unwrap();
+        let recording = Recording::open(&description).unwrap();
+        assert_eq!((recording.n_frames, recording.dtype), (3, Dtype::I16));
+        let mut back = Vec::new();
+        recording.read_frames(0, 3, &mut back).unwrap();
+        let expected = [1.2f32, -5.6, 3276.7, -3276.7, 0.0, 0.1];
+        for (b, e) in back.iter().zip(expected) {
+            assert!((b - e).abs() < 1e-3, "{back:?}");
         }
     }
 }

@@ -23,10 +23,10 @@ pub mod qc;
 use arrow_array::{ArrayRef, BooleanArray, Float64Array, Int32Array, RecordBatch, StringArray};
 use arrow_schema::{DataType, Field, Schema};
 use kernel::{FilterEngine, Scratch};
-use params::{FilterParams, Reference, ValidFilterParams};
+use params::{FilterParams, FilteredStorage, Reference, ValidFilterParams};
 use qc::{ChannelStatus, Welch};
 use rayon::prelude::*;
-use spikeyard_contract::recording::{to_channel_major, F32RecordingWriter};
+use spikeyard_contract::recording::{to_channel_major, RecordingWriter, Storage};
 use spikeyard_contract::table::write_table;
 use spikeyard_contract::{
     noise, Chunk, ContractError, ProgressReporter, Recording, RecordingError, StageFailure, StageReport, StageRequest,
@@ -87,11 +87,17 @@ pub fn filter_chunk(
                 (first, lanes, filtered)
             })
             .collect();
-        for (first, lanes, filtered) in blocks {
-            for (frame, values) in filtered.chunks_exact(lanes).enumerate() {
-                out[frame * n_channels + first..frame * n_channels + first + lanes].copy_from_slice(values);
+        // Back to time-major, in parallel over runs of frames.
+        const FRAMES_PER_TASK: usize = 1024;
+        out.par_chunks_mut(n_channels * FRAMES_PER_TASK).enumerate().for_each(|(task, rows)| {
+            let start = task * FRAMES_PER_TASK;
+            for (first, lanes, filtered) in &blocks {
+                for (k, row) in rows.chunks_exact_mut(n_channels).enumerate() {
+                    let frame = start + k;
+                    row[*first..first + lanes].copy_from_slice(&filtered[frame * lanes..(frame + 1) * lanes]);
+                }
             }
-        }
+        });
         return Ok(());
     }
     let mut by_channel = Vec::new();
@@ -293,25 +299,70 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     let groups = reference_groups(&recording, valid.reference_by_group);
     let chunk_frames = valid.chunk_frames.max(engine.margin_frames());
     let chunks = recording.chunks(chunk_frames, engine.margin_frames());
-    let mut writer =
-        F32RecordingWriter::create(&request.output_dir, "filtered", recording.sample_rate_hz, &recording.electrodes)
-            .map_err(|e| output(e, "filtered.bin"))?;
-    let mut progress = ProgressReporter::new(recording.n_frames, "frames");
-    let (mut raw, mut filtered) = (Vec::new(), Vec::new());
-    let masked_before = recording.masked_samples();
-    for chunk in &chunks {
-        filter_chunk(&engine, &recording, chunk, &mut raw, &mut filtered).map_err(|e| match e {
-            RecordingError::NonFinite { .. } => StageFailure::bad_input(e),
-            other => StageFailure::failed(other),
-        })?;
-        if valid.reference == Reference::Median && n_usable > 0 {
-            let n_channels = recording.n_channels;
-            filtered
-                .par_chunks_mut(n_channels * 1024)
-                .for_each(|block| kernel::subtract_median_reference(block, n_channels, &groups, &usable));
+    let storage = match params.store_filtered_as {
+        FilteredStorage::F32 => Storage::F32,
+        FilteredStorage::I16 => {
+            let noisiest =
+                qc.noise_mad_uv.iter().zip(&usable).filter(|(_, u)| **u).map(|(n, _)| *n).fold(0.0, f64::max);
+            Storage::I16 { microvolts_per_unit: if noisiest > 0.0 { noisiest / 64.0 } else { 0.01 } }
         }
-        writer.write_frames(&filtered).map_err(|e| output(e, "filtered.bin"))?;
-        progress.advance(chunk.core_frames() as u64);
+    };
+    let mut writer = RecordingWriter::create(
+        &request.output_dir,
+        "filtered",
+        recording.sample_rate_hz,
+        &recording.electrodes,
+        storage,
+    )
+    .map_err(|e| output(e, "filtered.bin"))?;
+    let mut progress = ProgressReporter::new(recording.n_frames, "frames");
+    let masked_before = recording.masked_samples();
+    // A writer thread writes chunk k while chunk k + 1 is read and filtered;
+    // at most two filtered chunks are in flight, and their buffers are reused.
+    let (to_writer, written) = std::sync::mpsc::sync_channel::<Vec<f32>>(1);
+    let (recycle, recycled) = std::sync::mpsc::channel::<Vec<f32>>();
+    let (filtering, writing) = std::thread::scope(|scope| {
+        let writer_thread = scope.spawn(move || -> std::io::Result<RecordingWriter> {
+            for block in written {
+                writer.write_frames(&block)?;
+                let _ = recycle.send(block);
+            }
+            Ok(writer)
+        });
+        let mut raw = Vec::new();
+        let filtering = chunks.iter().try_for_each(|chunk| {
+            let mut filtered = recycled.try_recv().unwrap_or_default();
+            filter_chunk(&engine, &recording, chunk, &mut raw, &mut filtered).map_err(|e| match e {
+                RecordingError::NonFinite { .. } => StageFailure::bad_input(e),
+                other => StageFailure::failed(other),
+            })?;
+            if valid.reference == Reference::Median && n_usable > 0 {
+                let n_channels = recording.n_channels;
+                filtered
+                    .par_chunks_mut(n_channels * 1024)
+                    .for_each(|block| kernel::subtract_median_reference(block, n_channels, &groups, &usable));
+            }
+            progress.advance(chunk.core_frames() as u64);
+            // A closed channel means the writer failed: stop; its own error is reported below.
+            to_writer.send(filtered).map_err(|_| output(std::io::Error::other("the writer stopped"), "filtered.bin"))
+        });
+        drop(to_writer);
+        (filtering, writer_thread.join())
+    });
+    let writer = match writing {
+        Ok(Ok(writer)) => writer,
+        Ok(Err(e)) => return Err(output(e, "filtered.bin")),
+        Err(_) => return Err(output(std::io::Error::other("the writer thread panicked"), "filtered.bin")),
+    };
+    filtering?;
+    if writer.clipped_samples() > 0 {
+        report.warn(format!(
+            "{} filtered samples beyond ±512 noise σ were clipped when stored as i16 (store_filtered_as = \"f32\" keeps them)",
+            writer.clipped_samples()
+        ));
+    }
+    if let Storage::I16 { microvolts_per_unit } = storage {
+        report.summary.insert("filtered_microvolts_per_unit".into(), microvolts_per_unit.into());
     }
     writer.finish().map_err(|e| output(e, FILTERED_RECORDING))?;
     // Chunks overlap by their margins, so a masked sample may be counted twice.

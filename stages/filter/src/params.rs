@@ -23,6 +23,18 @@ pub enum Reference {
     None,
 }
 
+/// How the filtered recording is stored for the stages after the filter.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum FilteredStorage {
+    /// 16-bit integers, a step of 1/64 of the noisiest usable channel's
+    /// noise σ (range ±512 σ; beyond it samples clip and are counted): half
+    /// the bytes of f32, with rounding far below the noise.
+    I16,
+    /// 32-bit floats, exact.
+    F32,
+}
+
 /// `[stage.params]` of the filter stage, as written in the config.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields, default)]
@@ -60,6 +72,8 @@ pub struct FilterParams {
     /// NaN or ±Inf in float recordings: "refuse" (stop with the frame and
     /// channel, default) or "zero" (replace by 0 µV, counted in the report).
     pub non_finite: spikeyard_contract::recording::NonFinite,
+    /// "i16" (default) or "f32": how `filtered.bin` stores the filtered signal.
+    pub store_filtered_as: FilteredStorage,
 }
 
 impl Default for FilterParams {
@@ -80,6 +94,7 @@ impl Default for FilterParams {
             dead_below_ratio: 0.2,
             noisy_above_ratio: 3.0,
             non_finite: spikeyard_contract::recording::NonFinite::Refuse,
+            store_filtered_as: FilteredStorage::I16,
         }
     }
 }
