@@ -166,7 +166,10 @@ fn main() -> anyhow::Result<()> {
                 format!("{found} of {} at accuracy ≥ 0.8, mean accuracy {mean:.3}", c.truth.len())
             };
             println!("\nsimulated units found: spikeyard {}; reference {}", summary(&ours), summary(&theirs));
-            println!("spikeyard's units found again in the reference's sorting: {}", summary(&agreement));
+            println!(
+                "spikeyard's units (with those flagged small) found again in the reference's sorting: {}",
+                summary(&agreement)
+            );
         }
     }
     Ok(())

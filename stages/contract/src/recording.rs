@@ -296,10 +296,17 @@ impl Recording {
         out.clear();
         out.resize(((end.saturating_sub(start)) as usize).saturating_mul(self.n_channels), 0.0);
         if self.dtype == Dtype::F32 && gain == 1.0 && offset == 0.0 && self.layout == Layout::TimeMajor {
-            // The common case of an already-scaled f32 file (the filter
-            // stage's own output): a straight copy.
+            // The common case of an already-scaled f32 file: a straight copy.
             self.visit_stored(start, end, |index, bytes| {
                 out[index] = f32::from_le_bytes([bytes[0], bytes[1], bytes[2], bytes[3]])
+            })?;
+        } else if self.dtype == Dtype::I16 && self.layout == Layout::TimeMajor {
+            // The commonest raw format, and the filter stage's own output:
+            // one tight loop over the mapped bytes (same arithmetic as below).
+            self.visit_time_major(start, end, |bytes| {
+                for (o, b) in out.iter_mut().zip(bytes.chunks_exact(2)) {
+                    *o = ((i16::from_le_bytes([b[0], b[1]]) as f64 - offset) * gain) as f32;
+                }
             })?;
         } else {
             let dtype = self.dtype;
@@ -347,32 +354,56 @@ impl Recording {
         Ok(())
     }
 
+    fn check_range(&self, start: u64, end: u64) -> Result<(), RecordingError> {
+        if start > end || end > self.n_frames {
+            return Err(RecordingError::Io {
+                path: self.data_path.clone(),
+                source: std::io::Error::new(
+                    std::io::ErrorKind::InvalidInput,
+                    format!("frames {start}..{end} requested, but the recording has {} frames", self.n_frames),
+                ),
+            });
+        }
+        Ok(())
+    }
+
+    /// Call `visit` with the stored bytes of frames `start..end` of a
+    /// time-major file (not at all for an empty range).
+    fn visit_time_major(&self, start: u64, end: u64, visit: impl FnOnce(&[u8])) -> Result<(), RecordingError> {
+        let io = |source: std::io::Error| RecordingError::Io { path: self.data_path.clone(), source };
+        self.check_range(start, end)?;
+        let n_frames = (end - start) as usize;
+        if n_frames == 0 {
+            return Ok(());
+        }
+        let file = File::open(&self.data_path).map_err(io)?;
+        let frame_bytes = self.n_channels * self.dtype.bytes();
+        let map = map_range(&file, start * frame_bytes as u64, n_frames * frame_bytes).map_err(io)?;
+        visit(&map);
+        Ok(())
+    }
+
     /// Call `put(index, bytes)` for every stored value of frames
     /// `start..end`, where `index` is its time-major position.
     fn visit_stored(&self, start: u64, end: u64, mut put: impl FnMut(usize, &[u8])) -> Result<(), RecordingError> {
         let io = |source: std::io::Error| RecordingError::Io { path: self.data_path.clone(), source };
-        if start > end || end > self.n_frames {
-            return Err(io(std::io::Error::new(
-                std::io::ErrorKind::InvalidInput,
-                format!("frames {start}..{end} requested, but the recording has {} frames", self.n_frames),
-            )));
-        }
+        self.check_range(start, end)?;
         let n_frames = (end - start) as usize;
         let n_channels = self.n_channels;
         if n_frames == 0 {
             return Ok(());
         }
-        let file = File::open(&self.data_path).map_err(io)?;
         let item = self.dtype.bytes();
         match self.layout {
             Layout::TimeMajor => {
-                let frame_bytes = n_channels * item;
-                let map = map_range(&file, start * frame_bytes as u64, n_frames * frame_bytes).map_err(io)?;
-                for (index, bytes) in map.chunks_exact(item).enumerate() {
-                    put(index, bytes);
-                }
+                return self.visit_time_major(start, end, |map| {
+                    for (index, bytes) in map.chunks_exact(item).enumerate() {
+                        put(index, bytes);
+                    }
+                });
             }
             Layout::ChannelMajor => {
+                let file = File::open(&self.data_path).map_err(io)?;
                 let channel_bytes = self.n_frames * item as u64;
                 for channel in 0..n_channels {
                     let map = map_range(&file, channel as u64 * channel_bytes + start * item as u64, n_frames * item)

@@ -347,8 +347,13 @@ fn array_section(request: &StageRequest, recording: &Recording, units: &[Unit]) 
         Ok(())
     })?;
     let frame = MapFrame::new(recording);
-    let finite = noise.iter().copied().filter(|v| v.is_finite());
-    let (low, high) = finite.fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), v| (a.min(v), b.max(v)));
+    // Shade by noise relative to the array's median, from half of it (light)
+    // to three times it (dark), so that ordinary spread stays quiet and
+    // outliers stand out.
+    let mut finite: Vec<f64> = noise.iter().copied().filter(|v| v.is_finite()).collect();
+    finite.sort_by(f64::total_cmp);
+    let median = finite.get(finite.len() / 2).copied().unwrap_or(f64::NAN);
+    let (low, high) = (0.5 * median, 3.0 * median);
     let size = frame.size();
     let mut body = String::new();
     for (e, (level, state)) in recording.electrodes.iter().zip(noise.iter().zip(&status)) {
@@ -395,7 +400,7 @@ fn array_section(request: &StageRequest, recording: &Recording, units: &[Unit]) 
     }
     let _ = write!(
         legend,
-        "<text x=\"76\" y=\"9\">noise {}–{} µV (MAD σ)</text><rect x=\"0\" y=\"16\" width=\"10\" height=\"10\" fill=\"none\" stroke=\"{INK}\" stroke-width=\"2\"/><text x=\"14\" y=\"25\">noisy</text>\
+        "<text x=\"76\" y=\"9\">noise (MAD σ) {}–{} µV: ½ to 3 × the array median</text><rect x=\"0\" y=\"16\" width=\"10\" height=\"10\" fill=\"none\" stroke=\"{INK}\" stroke-width=\"2\"/><text x=\"14\" y=\"25\">noisy</text>\
          <path d=\"M50,16l10,10m0,-10l-10,10\" stroke=\"{INK}\" stroke-width=\"1.2\"/><text x=\"64\" y=\"25\">dead</text>\
          <circle cx=\"105\" cy=\"21\" r=\"5\" fill=\"none\" stroke=\"{ACCENT}\" stroke-width=\"1.6\"/><text x=\"113\" y=\"25\">unit{}</text>",
         short(low),
