@@ -9,7 +9,7 @@
 use anyhow::Context;
 use clap::Parser;
 use spikeyard::runner::{ProgressMode, RunRecord};
-use spikeyard::simulate::{write_recording, Scenario, UnitSpec};
+use spikeyard::simulate::{write_recording, Axon, Scenario, UnitSpec};
 use spikeyard_contract::{Electrode, Recording};
 use std::path::PathBuf;
 use std::time::{Duration, Instant};
@@ -32,35 +32,79 @@ struct Args {
     /// same file when python3 has those packages.
     #[arg(long)]
     no_reference: bool,
+    /// Electrode layout: "probe" (four staggered columns, 16 × 20 µm) or
+    /// "grid" (a square dense array at 17.5 µm pitch, e.g. 1024 = 32 × 32,
+    /// with axons crossing it).
+    #[arg(long, default_value = "probe")]
+    layout: String,
 }
 
-/// A probe-like layout: two staggered columns per shank row, 20 µm apart.
-fn probe_scenario(n_channels: usize, sample_rate_hz: f64, duration_s: f64) -> Scenario {
-    let electrodes: Vec<Electrode> = (0..n_channels)
-        .map(|channel| Electrode {
-            channel,
-            x_um: (channel % 4) as f64 * 16.0 + if (channel / 4) % 2 == 1 { 8.0 } else { 0.0 },
-            y_um: (channel / 4) as f64 * 20.0,
-            label: None,
-            group: None,
-        })
-        .collect();
+/// A probe-like layout (two staggered columns per shank row, 20 µm apart)
+/// or a square dense grid at 17.5 µm whose every fourth unit has a straight
+/// axon across the array.
+fn bench_scenario(layout: &str, n_channels: usize, sample_rate_hz: f64, duration_s: f64) -> anyhow::Result<Scenario> {
+    let side = (n_channels as f64).sqrt().round() as usize;
+    let (electrodes, width_um, height_um): (Vec<Electrode>, f64, f64) = match layout {
+        "probe" => (
+            (0..n_channels)
+                .map(|channel| Electrode {
+                    channel,
+                    x_um: (channel % 4) as f64 * 16.0 + if (channel / 4) % 2 == 1 { 8.0 } else { 0.0 },
+                    y_um: (channel / 4) as f64 * 20.0,
+                    label: None,
+                    group: None,
+                })
+                .collect(),
+            48.0,
+            (n_channels / 4) as f64 * 20.0,
+        ),
+        "grid" => {
+            anyhow::ensure!(
+                side * side == n_channels,
+                "--layout grid needs a square --channels (e.g. 1024), not {n_channels}"
+            );
+            (
+                (0..n_channels)
+                    .map(|channel| Electrode {
+                        channel,
+                        x_um: (channel % side) as f64 * 17.5,
+                        y_um: (channel / side) as f64 * 17.5,
+                        label: None,
+                        group: None,
+                    })
+                    .collect(),
+                (side - 1) as f64 * 17.5,
+                (side - 1) as f64 * 17.5,
+            )
+        }
+        other => anyhow::bail!("--layout is \"{other}\"; known: probe, grid"),
+    };
     let n_units = n_channels / 8;
-    let height_um = (n_channels / 4) as f64 * 20.0;
     let units = (0..n_units)
-        .map(|i| UnitSpec {
-            x_um: 5.0 + (i * 13 % 48) as f64,
-            y_um: height_um * (i as f64 + 0.5) / n_units as f64,
-            z_um: 15.0 + (i % 5) as f64 * 5.0,
-            peak_uv: 50.0 + (i * 37 % 100) as f64,
-            rate_hz: 2.0 + (i % 7) as f64,
-            burst_probability: 0.05,
-            trough_ms: 0.12,
-            axon: None,
+        .map(|i| {
+            let (x_um, y_um) = if layout == "grid" {
+                (
+                    width_um * ((i * 7 % n_units) as f64 + 0.5) / n_units as f64,
+                    height_um * (i as f64 + 0.5) / n_units as f64,
+                )
+            } else {
+                (5.0 + (i * 13 % 48) as f64, height_um * (i as f64 + 0.5) / n_units as f64)
+            };
+            UnitSpec {
+                x_um,
+                y_um,
+                z_um: 15.0 + (i % 5) as f64 * 5.0,
+                peak_uv: 50.0 + (i * 37 % 100) as f64,
+                rate_hz: 2.0 + (i % 7) as f64,
+                burst_probability: 0.05,
+                trough_ms: 0.12,
+                axon: (layout == "grid" && i % 4 == 0)
+                    .then(|| Axon::straight((x_um, y_um), (width_um - x_um, y_um), 0.3 + (i % 9) as f64 * 0.2, 25.0)),
+            }
         })
         .collect();
-    Scenario {
-        name: format!("bench-probe-{n_channels}ch"),
+    Ok(Scenario {
+        name: format!("bench-{layout}-{n_channels}ch"),
         sample_rate_hz,
         duration_s,
         electrodes,
@@ -69,7 +113,7 @@ fn probe_scenario(n_channels: usize, sample_rate_hz: f64, duration_s: f64) -> Sc
         dead_channels: vec![],
         noisy_channels: vec![],
         seed: 42,
-    }
+    })
 }
 
 fn read_once(recording: &Recording) -> anyhow::Result<Duration> {
@@ -86,7 +130,7 @@ fn read_once(recording: &Recording) -> anyhow::Result<Duration> {
 
 fn main() -> anyhow::Result<()> {
     let args = Args::parse();
-    let scenario = probe_scenario(args.channels, args.sample_rate_hz, args.duration_s);
+    let scenario = bench_scenario(&args.layout, args.channels, args.sample_rate_hz, args.duration_s)?;
     let recording_dir = args.work.join(&scenario.name).join(format!("{}s", args.duration_s));
     let description = recording_dir.join("recording.toml");
     if !description.exists() {

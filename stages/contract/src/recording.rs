@@ -838,21 +838,32 @@ mod layout_tests {
 /// tile so that both sides stay in cache. One pass, instead of one strided
 /// pass per channel.
 pub fn to_channel_major(frames: &[f32], n_channels: usize, out: &mut Vec<f32>) {
-    const TILE: usize = 64;
+    use rayon::prelude::*;
+    // Channels per task (their values share cache lines when read) and
+    // frames per pass (their lines stay in cache while a task's channels
+    // are copied out of them).
+    const CHANNELS: usize = 32;
+    const FRAMES: usize = 256;
     let n_frames = frames.len() / n_channels.max(1);
     out.clear();
     out.resize(n_frames * n_channels, 0.0);
-    for frame0 in (0..n_frames).step_by(TILE) {
-        let frame1 = (frame0 + TILE).min(n_frames);
-        for channel0 in (0..n_channels).step_by(TILE) {
-            let channel1 = (channel0 + TILE).min(n_channels);
-            for frame in frame0..frame1 {
-                for channel in channel0..channel1 {
-                    out[channel * n_frames + frame] = frames[frame * n_channels + channel];
+    if n_frames == 0 {
+        return;
+    }
+    out.par_chunks_mut(CHANNELS * n_frames).enumerate().for_each(|(task, block)| {
+        let first = task * CHANNELS;
+        let width = block.len() / n_frames;
+        for frame0 in (0..n_frames).step_by(FRAMES) {
+            let frame1 = (frame0 + FRAMES).min(n_frames);
+            let rows = &frames[frame0 * n_channels..frame1 * n_channels];
+            for c in 0..width {
+                let column = &mut block[c * n_frames + frame0..c * n_frames + frame1];
+                for (o, row) in column.iter_mut().zip(rows.chunks_exact(n_channels)) {
+                    *o = row[first + c];
                 }
             }
         }
-    }
+    });
 }
 
 #[cfg(test)]

@@ -20,56 +20,72 @@ impl Event {
     }
 }
 
-/// Scan one channel for threshold crossings.
+/// Scan every channel of time-major frames for threshold crossings.
 ///
-/// `x` holds frames starting at `first_frame`; crossings are looked for at
-/// positions `core` of `x` (position k crosses when `x[k−1]` is on the near
-/// side of the threshold and `x[k]` beyond it); the extremum is searched in
-/// `k..k + peak_frames` (clipped to `x`). `last_crossing` carries the dead
-/// time across chunks.
+/// `frames` holds `n_channels`-wide frames starting at `first_frame`;
+/// crossings are looked for at frame positions `core` (position k crosses
+/// on channel c when frame k−1 is on the near side of `thresholds_uv[c]`
+/// and frame k beyond it; an infinite threshold turns a channel off); the
+/// extremum is searched in `k..k + peak_frames` (clipped to `frames`).
+/// `last_crossing[c]` carries channel c's dead time across chunks. Events
+/// are appended in order of crossing.
+///
+/// The scan runs along frames, across channels, so no transpose is needed
+/// and the comparisons of one frame run side by side.
 #[allow(clippy::too_many_arguments)]
 pub fn find_crossings(
-    x: &[f32],
+    frames: &[f32],
+    n_channels: usize,
     first_frame: u64,
     core: std::ops::Range<usize>,
-    threshold_uv: f32,
+    thresholds_uv: &[f32],
     polarity: Polarity,
     peak_frames: usize,
     dead_frames: u64,
-    channel: u32,
-    last_crossing: &mut Option<u64>,
+    last_crossing: &mut [Option<u64>],
     out: &mut Vec<Event>,
 ) {
-    let start = core.start.max(1);
-    for k in start..core.end {
-        let (before, now) = (x[k - 1], x[k]);
-        let sign = if matches!(polarity, Polarity::Negative | Polarity::Both)
-            && before >= -threshold_uv
-            && now < -threshold_uv
-        {
-            -1.0f32
-        } else if matches!(polarity, Polarity::Positive | Polarity::Both)
-            && before <= threshold_uv
-            && now > threshold_uv
-        {
-            1.0
-        } else {
-            continue;
-        };
-        let frame = first_frame + k as u64;
-        if let Some(last) = *last_crossing {
-            if frame < last + dead_frames {
-                continue;
+    use rayon::prelude::*;
+    const FRAMES_PER_TASK: usize = 4096;
+    let n_frames = frames.len() / n_channels.max(1);
+    let (negative, positive) = (
+        matches!(polarity, Polarity::Negative | Polarity::Both),
+        matches!(polarity, Polarity::Positive | Polarity::Both),
+    );
+    let (start, end) = (core.start.max(1), core.end.min(n_frames));
+    // Crossings (frame, channel, sign) in parallel over runs of frames, in
+    // frame order; then, in that order, the dead time and the extremum.
+    let crossings: Vec<Vec<(usize, usize, f32)>> = (start..end.max(start))
+        .step_by(FRAMES_PER_TASK)
+        .collect::<Vec<_>>()
+        .into_par_iter()
+        .map(|from| {
+            let mut found = Vec::new();
+            for k in from..(from + FRAMES_PER_TASK).min(end) {
+                let before = &frames[(k - 1) * n_channels..k * n_channels];
+                let now = &frames[k * n_channels..(k + 1) * n_channels];
+                for (c, ((&b, &x), &t)) in before.iter().zip(now).zip(thresholds_uv).enumerate() {
+                    if negative & (b >= -t) & (x < -t) {
+                        found.push((k, c, -1.0));
+                    } else if positive & (b <= t) & (x > t) {
+                        found.push((k, c, 1.0));
+                    }
+                }
             }
+            found
+        })
+        .collect();
+    for (k, c, sign) in crossings.into_iter().flatten() {
+        let frame = first_frame + k as u64;
+        if last_crossing[c].is_some_and(|last| frame < last + dead_frames) {
+            continue;
         }
-        *last_crossing = Some(frame);
-        let end = (k + peak_frames).min(x.len());
-        let (peak, value) =
-            x[k..end]
-                .iter()
-                .enumerate()
-                .fold((k, now), |best, (i, &v)| if sign * v > sign * best.1 { (k + i, v) } else { best });
-        out.push(Event { sample: first_frame + peak as u64, channel, amplitude_uv: value });
+        last_crossing[c] = Some(frame);
+        let stop = (k + peak_frames).min(n_frames);
+        let (peak, value) = (k..stop)
+            .map(|j| (j, frames[j * n_channels + c]))
+            .fold((k, frames[k * n_channels + c]), |best, (j, v)| if sign * v > sign * best.1 { (j, v) } else { best });
+        out.push(Event { sample: first_frame + peak as u64, channel: c as u32, amplitude_uv: value });
     }
 }
 
@@ -150,9 +166,22 @@ mod tests {
 
     fn scan(x: &[f32], polarity: Polarity, dead: u64) -> Vec<(u64, f32)> {
         let mut out = vec![];
-        let mut last = None;
-        find_crossings(x, 100, 0..x.len(), 5.0, polarity, 3, dead, 0, &mut last, &mut out);
+        let mut last = [None];
+        find_crossings(x, 1, 100, 0..x.len(), &[5.0], polarity, 3, dead, &mut last, &mut out);
         out.iter().map(|e| (e.sample, e.amplitude_uv)).collect()
+    }
+
+    #[test]
+    fn channels_are_scanned_independently_and_off_channels_are_skipped() {
+        // Three channels interleaved: channel 0 crosses at frame 1 (trough
+        // at 2), channel 1 at frame 2; channel 2 would cross but is off.
+        let frames = [0.0, 0.0, 0.0, -6.0, 0.0, -9.0, -7.0, -8.0, -9.0, 0.0, -6.0, 0.0];
+        let mut out = vec![];
+        let mut last = [None; 3];
+        find_crossings(&frames, 3, 0, 0..4, &[5.0, 5.0, f32::INFINITY], Polarity::Negative, 2, 0, &mut last, &mut out);
+        let found: Vec<(u64, u32, f32)> = out.iter().map(|e| (e.sample, e.channel, e.amplitude_uv)).collect();
+        assert_eq!(found, vec![(2, 0, -7.0), (2, 1, -8.0)]);
+        assert_eq!(last, [Some(1), Some(2), None]);
     }
 
     #[test]

@@ -8,7 +8,7 @@
 //! 2. noise σ per channel: MAD estimate (Quiroga et al. 2004) on windows
 //!    spread over the recording, the median over windows;
 //! 3. chunk by chunk, channels in parallel: crossings of ±threshold_sigma·σ
-//!    with a dead time, each placed at its extremum ([`kernel::find_crossings`]);
+//!    with a dead time, each placed at its extremum ([`kernel::find_crossings`], along frames and across channels);
 //! 4. events merged across electrodes within a radius and a time window
 //!    ([`kernel::EventMerger`]) and streamed to `events.parquet`;
 //! 5. `channel_noise.parquet` records σ and the threshold per channel.
@@ -116,7 +116,19 @@ pub fn detect<E: From<RecordingError>>(
     mut sink: impl FnMut(&[Event]) -> Result<(), E>,
 ) -> Result<(), E> {
     let n_channels = recording.n_channels;
-    let thresholds: Vec<f32> = noise_uv.iter().map(|s| (s * params.threshold_sigma) as f32).collect();
+    // Channels not usable, or without noise, are off: an infinite threshold.
+    let thresholds: Vec<f32> = noise_uv
+        .iter()
+        .zip(usable)
+        .map(|(s, &u)| {
+            let t = (s * params.threshold_sigma) as f32;
+            if u && t > 0.0 {
+                t
+            } else {
+                f32::INFINITY
+            }
+        })
+        .collect();
     let mut last_crossing: Vec<Option<u64>> = vec![None; n_channels];
     let neighbours = if params.merge_radius_um > 0.0 {
         neighbours_within(recording, params.merge_radius_um)
@@ -124,44 +136,28 @@ pub fn detect<E: From<RecordingError>>(
         vec![Vec::new(); n_channels]
     };
     let mut merger = EventMerger::new(neighbours, params.merge_frames);
-    let (mut frames, mut columns) = (Vec::new(), Vec::new());
+    let mut frames = Vec::new();
     let mut kept = Vec::new();
+    let mut found = Vec::new();
     // One frame before the core (for the first comparison) and the peak search after it.
     for chunk in recording.chunks(params.chunk_frames, params.peak_frames + 1) {
         recording.read_frames(chunk.read_start, chunk.read_end, &mut frames)?;
         let core_offset = (chunk.core_start - chunk.read_start) as usize;
         let core = core_offset..core_offset + chunk.core_frames();
-        to_channel_major(&frames, n_channels, &mut columns);
-        let columns: &[f32] = &columns;
-        let read_frames = chunk.read_frames();
-        let found: Vec<(Vec<Event>, Option<u64>)> = last_crossing
-            .par_iter()
-            .enumerate()
-            .map(|(channel, &last)| {
-                let mut events = Vec::new();
-                let mut last = last;
-                if usable[channel] && thresholds[channel] > 0.0 {
-                    let x = &columns[channel * read_frames..(channel + 1) * read_frames];
-                    kernel::find_crossings(
-                        x,
-                        chunk.read_start,
-                        core.clone(),
-                        thresholds[channel],
-                        params.polarity,
-                        params.peak_frames,
-                        params.dead_frames,
-                        channel as u32,
-                        &mut last,
-                        &mut events,
-                    );
-                }
-                (events, last)
-            })
-            .collect();
-        for (slot, (events, last)) in last_crossing.iter_mut().zip(found) {
-            *slot = last;
-            merger.add(events);
-        }
+        found.clear();
+        kernel::find_crossings(
+            &frames,
+            n_channels,
+            chunk.read_start,
+            core,
+            &thresholds,
+            params.polarity,
+            params.peak_frames,
+            params.dead_frames,
+            &mut last_crossing,
+            &mut found,
+        );
+        merger.add(found.iter().copied());
         kept.clear();
         let is_last = chunk.core_end == recording.n_frames;
         merger.decide(if is_last { None } else { Some(chunk.core_end) }, &mut kept);
