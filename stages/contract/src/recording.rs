@@ -609,6 +609,29 @@ impl DescriptionFields<'_> {
     }
 }
 
+/// Electrode pitch: the median distance from an electrode to its nearest
+/// neighbour, µm (0 with fewer than two electrodes).
+pub fn electrode_pitch(points: &[(f64, f64)]) -> f64 {
+    let mut nearest: Vec<f64> = points
+        .iter()
+        .enumerate()
+        .map(|(i, a)| {
+            points
+                .iter()
+                .enumerate()
+                .filter(|&(j, _)| j != i)
+                .map(|(_, b)| (a.0 - b.0).hypot(a.1 - b.1))
+                .fold(f64::INFINITY, f64::min)
+        })
+        .filter(|d| d.is_finite())
+        .collect();
+    if nearest.is_empty() {
+        return 0.0;
+    }
+    nearest.sort_by(f64::total_cmp);
+    nearest[nearest.len() / 2]
+}
+
 /// How a written recording stores its microvolts.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub enum Storage {
@@ -903,5 +926,12 @@ mod transpose_tests {
         for (b, e) in back.iter().zip(expected) {
             assert!((b - e).abs() < 1e-3, "{back:?}");
         }
+    }
+
+    #[test]
+    fn pitch_is_the_typical_nearest_neighbour_distance() {
+        let grid: Vec<(f64, f64)> = (0..64).map(|i| ((i % 8) as f64 * 200.0, (i / 8) as f64 * 200.0)).collect();
+        assert_eq!(super::electrode_pitch(&grid), 200.0);
+        assert_eq!(super::electrode_pitch(&grid[..1]), 0.0);
     }
 }

@@ -82,29 +82,6 @@ fn largest_trough(nodes: &[Node]) -> Option<usize> {
     })
 }
 
-/// Electrode pitch: the median distance from an electrode to its nearest
-/// neighbour (0 with fewer than two electrodes).
-pub fn pitch(points: &[(f64, f64)]) -> f64 {
-    let mut nearest: Vec<f64> = points
-        .iter()
-        .enumerate()
-        .map(|(i, a)| {
-            points
-                .iter()
-                .enumerate()
-                .filter(|&(j, _)| j != i)
-                .map(|(_, b)| (a.0 - b.0).hypot(a.1 - b.1))
-                .fold(f64::INFINITY, f64::min)
-        })
-        .filter(|d| d.is_finite())
-        .collect();
-    if nearest.is_empty() {
-        return 0.0;
-    }
-    nearest.sort_by(f64::total_cmp);
-    nearest[nearest.len() / 2]
-}
-
 /// A node stays on the ridge with at least this share of the largest
 /// trough beside it.
 pub const RIDGE_SHARE: f64 = 0.8;
@@ -349,12 +326,5 @@ mod tests {
         let smooth = smoothed_arc_length(&points, 2);
         assert!((raw[8] - (4.0 * 17.5 + 4.0 * 17.5 * 2f64.sqrt())).abs() < 1e-9);
         assert!((smooth[8] - truth).abs() < (raw[8] - truth).abs() / 3.0, "{} {} {truth}", smooth[8], raw[8]);
-    }
-
-    #[test]
-    fn pitch_is_the_typical_nearest_neighbour_distance() {
-        let grid: Vec<(f64, f64)> = (0..64).map(|i| ((i % 8) as f64 * 200.0, (i / 8) as f64 * 200.0)).collect();
-        assert_eq!(pitch(&grid), 200.0);
-        assert_eq!(pitch(&grid[..1]), 0.0);
     }
 }

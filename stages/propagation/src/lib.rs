@@ -443,7 +443,7 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     write_table(&request.output(FOOTPRINTS_TABLE), &footprint_batch, &metadata)?;
 
     let positions: Vec<(f64, f64)> = recording.electrodes.iter().map(|e| (e.x_um, e.y_um)).collect();
-    let pitch_um = fit::pitch(&positions);
+    let pitch_um = spikeyard_contract::recording::electrode_pitch(&positions);
     let mut found: Vec<Branch> = prints
         .iter()
         .enumerate()

@@ -286,7 +286,7 @@ impl MapFrame {
         let (x0, x1) = xs.fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), v| (a.min(v), b.max(v)));
         let (y0, y1) = ys.fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), v| (a.min(v), b.max(v)));
         let points: Vec<(f64, f64)> = recording.electrodes.iter().map(|e| (e.x_um, e.y_um)).collect();
-        let pitch = nearest_neighbour_median(&points).max(1e-3);
+        let pitch = spikeyard_contract::recording::electrode_pitch(&points).max(1e-3);
         let (span_x, span_y) = ((x1 - x0).max(0.0) + pitch, (y1 - y0).max(0.0) + pitch);
         let scale = (640.0 / span_x).min(480.0 / span_y);
         MapFrame {
@@ -309,25 +309,6 @@ impl MapFrame {
         let full = format!("{body}<g transform=\"translate(10,{:.1})\">{legend}</g>", self.height + 26.0);
         svg::svg_element(id, title, (self.width + 20.0).max(360.0), height, &full)
     }
-}
-
-/// Median distance from an electrode to its nearest neighbour.
-fn nearest_neighbour_median(points: &[(f64, f64)]) -> f64 {
-    let mut nearest: Vec<f64> = points
-        .iter()
-        .enumerate()
-        .map(|(i, a)| {
-            points
-                .iter()
-                .enumerate()
-                .filter(|&(j, _)| j != i)
-                .map(|(_, b)| (a.0 - b.0).hypot(a.1 - b.1))
-                .fold(f64::INFINITY, f64::min)
-        })
-        .filter(|d| d.is_finite())
-        .collect();
-    nearest.sort_by(f64::total_cmp);
-    nearest.get(nearest.len() / 2).copied().unwrap_or(1.0)
 }
 
 fn array_section(request: &StageRequest, recording: &Recording, units: &[Unit]) -> Result<String, StageFailure> {
