@@ -765,15 +765,7 @@ fn axon_scenario(seconds: f64) -> Scenario {
     use spikeyard::simulate::{Axon, UnitSpec};
     let mut scenario = Scenario::dense_axons(seconds, 11);
     scenario.sample_rate_hz = 30000.0;
-    scenario.electrodes = (0..24 * 24)
-        .map(|channel| spikeyard_contract::Electrode {
-            channel,
-            x_um: (channel % 24) as f64 * 17.5,
-            y_um: (channel / 24) as f64 * 17.5,
-            label: None,
-            group: None,
-        })
-        .collect();
+    scenario.electrodes = spikeyard::simulate::grid(24, 24, 17.5);
     let unit = |x_um: f64, y_um: f64, axon: Option<Axon>| UnitSpec {
         x_um,
         y_um,

@@ -63,19 +63,7 @@ fn bench_scenario(layout: &str, n_channels: usize, sample_rate_hz: f64, duration
                 side * side == n_channels,
                 "--layout grid needs a square --channels (e.g. 1024), not {n_channels}"
             );
-            (
-                (0..n_channels)
-                    .map(|channel| Electrode {
-                        channel,
-                        x_um: (channel % side) as f64 * 17.5,
-                        y_um: (channel / side) as f64 * 17.5,
-                        label: None,
-                        group: None,
-                    })
-                    .collect(),
-                (side - 1) as f64 * 17.5,
-                (side - 1) as f64 * 17.5,
-            )
+            (spikeyard::simulate::grid(side, side, 17.5), (side - 1) as f64 * 17.5, (side - 1) as f64 * 17.5)
         }
         other => anyhow::bail!("--layout is \"{other}\"; known: probe, grid"),
     };

@@ -136,7 +136,8 @@ pub struct Scenario {
 /// Names of the built-in scenarios.
 pub const SCENARIOS: [&str; 2] = ["sparse-grid", "dense-axons"];
 
-fn grid(n_rows: usize, n_columns: usize, pitch_um: f64) -> Vec<Electrode> {
+/// A rectangular grid of electrodes, row by row, labelled RrrCcc.
+pub fn grid(n_rows: usize, n_columns: usize, pitch_um: f64) -> Vec<Electrode> {
     (0..n_rows * n_columns)
         .map(|channel| {
             let (row, column) = (channel / n_columns, channel % n_columns);
