@@ -417,13 +417,26 @@ fn units_table(units: &[Unit], have_units: bool) -> String {
         s.push_str("<p class=\"note\">units.parquet is not among the inputs.</p></section>");
         return s;
     }
+    let (small, good): (Vec<&Unit>, Vec<&Unit>) = units.iter().partition(|u| u.small);
     let _ = write!(
         s,
-        "<p>{} units, {} flagged small (grey, last). Definitions of each measure: README, units.parquet.</p>",
-        units.len(),
-        units.iter().filter(|u| u.small).count()
+        "<p>{} units, best first; {} more flagged small are listed folded below. Definitions of each measure: \
+         README, units.parquet.</p>",
+        good.len(),
+        small.len()
     );
-    s.push_str("<table><tr><th>unit</th><th>electrode</th><th>spikes</th>");
+    s.push_str(&metrics_table(&good));
+    if !small.is_empty() {
+        let _ = write!(s, "<details><summary>{} units flagged small</summary>", small.len());
+        s.push_str(&metrics_table(&small));
+        s.push_str("</details>");
+    }
+    s.push_str("</section>");
+    s
+}
+
+fn metrics_table(units: &[&Unit]) -> String {
+    let mut s = String::from("<table><tr><th>unit</th><th>electrode</th><th>spikes</th>");
     for (_, heading) in METRICS {
         let _ = write!(s, "<th>{}</th>", escape(heading));
     }
@@ -443,7 +456,7 @@ fn units_table(units: &[Unit], have_units: bool) -> String {
         }
         s.push_str("</tr>");
     }
-    s.push_str("</table></section>");
+    s.push_str("</table>");
     s
 }
 
