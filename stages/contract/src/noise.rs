@@ -21,12 +21,22 @@ pub fn median_abs(values: &mut [f32]) -> f64 {
 
 /// Median of `values`, reordering them. Empty input gives NaN.
 pub fn median_in_place(values: &mut [f32]) -> f64 {
+    median_by(values, f32::total_cmp)
+}
+
+/// The same median for values known to be finite, with a plain comparison,
+/// several times cheaper than the total order (the median reference takes
+/// one per frame). Empty input gives NaN.
+pub fn median_of_finite(values: &mut [f32]) -> f64 {
+    median_by(values, |a, b| a.partial_cmp(b).unwrap_or(std::cmp::Ordering::Equal))
+}
+
+fn median_by(values: &mut [f32], order: impl FnMut(&f32, &f32) -> std::cmp::Ordering) -> f64 {
     let n = values.len();
     if n == 0 {
         return f64::NAN;
     }
-    let mid = n / 2;
-    let (lower, upper, _) = values.select_nth_unstable_by(mid, f32::total_cmp);
+    let (lower, upper, _) = values.select_nth_unstable_by(n / 2, order);
     let upper = *upper as f64;
     if n % 2 == 1 {
         upper
@@ -58,5 +68,15 @@ mod tests {
         assert_eq!(median_in_place(&mut [3.0, 1.0, 2.0]), 2.0);
         assert_eq!(median_in_place(&mut [4.0, 1.0, 3.0, 2.0]), 2.5);
         assert!(median_in_place(&mut []).is_nan());
+        assert!(median_of_finite(&mut []).is_nan());
+    }
+
+    #[test]
+    fn median_of_finite_values_matches_the_total_order_median() {
+        let mut rng = crate::testing::TestRng::new(5);
+        for n in [1usize, 2, 3, 10, 383, 384] {
+            let values: Vec<f32> = (0..n).map(|_| rng.normal() as f32 * 10.0).collect();
+            assert_eq!(median_of_finite(&mut values.clone()), median_in_place(&mut values.clone()), "n = {n}");
+        }
     }
 }

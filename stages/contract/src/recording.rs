@@ -652,7 +652,6 @@ pub struct RecordingWriter {
     sample_rate_hz: f64,
     n_channels: usize,
     storage: Storage,
-    frames_written: u64,
     clipped: u64,
     bytes: Vec<u8>,
 }
@@ -675,7 +674,6 @@ impl RecordingWriter {
             sample_rate_hz,
             n_channels: electrodes.len(),
             storage,
-            frames_written: 0,
             clipped: 0,
             bytes: Vec::new(),
         })
@@ -712,12 +710,7 @@ impl RecordingWriter {
             }
         }
         self.data.write_all(&self.bytes)?;
-        self.frames_written += (samples.len() / self.n_channels) as u64;
         Ok(())
-    }
-
-    pub fn frames_written(&self) -> u64 {
-        self.frames_written
     }
 
     /// Samples clipped to the i16 range so far.

@@ -1,4 +1,4 @@
-//! Detection kernels: threshold crossings on one channel, and the merge of
+//! Detection kernels: threshold crossings on every channel of time-major frames, and the merge of
 //! one spike seen on several electrodes into one event.
 
 use crate::params::Polarity;
