@@ -293,7 +293,7 @@ impl Recording {
     /// of the recording; a non-finite sample under [`NonFinite::Refuse`].
     pub fn read_frames(&self, start: u64, end: u64, out: &mut Vec<f32>) -> Result<(), RecordingError> {
         let (gain, offset) = (self.microvolts_per_unit, self.offset);
-        out.clear();
+        // Every value is overwritten below: a reused buffer of the same size is not cleared.
         out.resize(((end.saturating_sub(start)) as usize).saturating_mul(self.n_channels), 0.0);
         if self.dtype == Dtype::F32 && gain == 1.0 && offset == 0.0 && self.layout == Layout::TimeMajor {
             // The common case of an already-scaled f32 file: a straight copy.
@@ -303,10 +303,18 @@ impl Recording {
         } else if self.dtype == Dtype::I16 && self.layout == Layout::TimeMajor {
             // The commonest raw format, and the filter stage's own output:
             // one tight loop over the mapped bytes (same arithmetic as below).
+            // In parallel over runs of samples: the page faults of the map and
+            // the conversion are shared between the cores.
+            use rayon::prelude::*;
+            const SAMPLES_PER_TASK: usize = 1 << 16;
             self.visit_time_major(start, end, |bytes| {
-                for (o, b) in out.iter_mut().zip(bytes.chunks_exact(2)) {
-                    *o = ((i16::from_le_bytes([b[0], b[1]]) as f64 - offset) * gain) as f32;
-                }
+                out.par_chunks_mut(SAMPLES_PER_TASK).zip(bytes.par_chunks(2 * SAMPLES_PER_TASK)).for_each(
+                    |(out, bytes)| {
+                        for (o, b) in out.iter_mut().zip(bytes.chunks_exact(2)) {
+                            *o = ((i16::from_le_bytes([b[0], b[1]]) as f64 - offset) * gain) as f32;
+                        }
+                    },
+                )
             })?;
         } else {
             let dtype = self.dtype;
@@ -642,6 +650,63 @@ pub enum Storage {
     I16 { microvolts_per_unit: f64 },
 }
 
+/// Microvolts to stored bytes for one [`Storage`].
+#[derive(Debug, Clone, Copy)]
+pub struct SampleEncoder {
+    storage: Storage,
+}
+
+impl SampleEncoder {
+    pub fn bytes_per_sample(&self) -> usize {
+        match self.storage {
+            Storage::F32 => 4,
+            Storage::I16 { .. } => 2,
+        }
+    }
+
+    /// Encode `samples` into `out` (`bytes_per_sample()` bytes each, little
+    /// endian); returns how many were clipped to the i16 range.
+    pub fn encode(&self, samples: &[f32], out: &mut [u8]) -> u64 {
+        debug_assert_eq!(out.len(), samples.len() * self.bytes_per_sample());
+        match self.storage {
+            Storage::F32 => {
+                for (v, o) in samples.iter().zip(out.chunks_exact_mut(4)) {
+                    o.copy_from_slice(&v.to_le_bytes());
+                }
+                0
+            }
+            Storage::I16 { microvolts_per_unit } => {
+                let scale = (1.0 / microvolts_per_unit) as f32;
+                // Adding and subtracting 1.5·2²³ rounds an f32 of magnitude
+                // below 2²² to the nearest integer (ties to even) without a
+                // libm call.
+                const ROUNDER: f32 = 12_582_912.0;
+                let encode = |samples: &[f32], out: &mut [u8]| -> u32 {
+                    let mut clipped = 0;
+                    for (v, o) in samples.iter().zip(out.chunks_exact_mut(2)) {
+                        let units = v * scale;
+                        clipped += u32::from(!(-32767.0..=32767.0).contains(&units));
+                        let rounded = (units.clamp(-32767.0, 32767.0) + ROUNDER) - ROUNDER;
+                        o.copy_from_slice(&(rounded as i16).to_le_bytes());
+                    }
+                    clipped
+                };
+                // Tiles of a fixed size, which the compiler turns into SIMD.
+                const TILE: usize = 32;
+                let mut clipped = 0u64;
+                let tiled = samples.len() / TILE * TILE;
+                let (samples, samples_rest) = samples.split_at(tiled);
+                let (out, out_rest) = out.split_at_mut(2 * tiled);
+                for (s, o) in samples.chunks_exact(TILE).zip(out.chunks_exact_mut(2 * TILE)) {
+                    let (s, o): (&[f32; TILE], &mut [u8; 2 * TILE]) = (s.try_into().unwrap(), o.try_into().unwrap());
+                    clipped += u64::from(encode(s, o));
+                }
+                clipped + u64::from(encode(samples_rest, out_rest))
+            }
+        }
+    }
+}
+
 /// Writes a time-major microvolt recording (data, electrodes and
 /// description) frame block by frame block. The description is written last,
 /// by [`RecordingWriter::finish`], so a half-written recording has none.
@@ -679,38 +744,33 @@ impl RecordingWriter {
         })
     }
 
+    /// How this writer turns microvolts into stored bytes; callers with
+    /// several threads encode in parallel and hand the bytes to
+    /// [`RecordingWriter::write_encoded`].
+    pub fn encoder(&self) -> SampleEncoder {
+        SampleEncoder { storage: self.storage }
+    }
+
     /// Append time-major frames of microvolts (`samples.len()` must be a
     /// whole number of frames).
     pub fn write_frames(&mut self, samples: &[f32]) -> std::io::Result<()> {
-        use std::io::Write;
         debug_assert_eq!(samples.len() % self.n_channels, 0);
-        self.bytes.clear();
-        match self.storage {
-            Storage::F32 => {
-                self.bytes.reserve(samples.len() * 4);
-                for v in samples {
-                    self.bytes.extend_from_slice(&v.to_le_bytes());
-                }
-            }
-            Storage::I16 { microvolts_per_unit } => {
-                self.bytes.reserve(samples.len() * 2);
-                let scale = (1.0 / microvolts_per_unit) as f32;
-                // Adding and subtracting 1.5·2²³ rounds an f32 of magnitude
-                // below 2²² to the nearest integer (ties to even) without a
-                // libm call.
-                const ROUNDER: f32 = 12_582_912.0;
-                for v in samples {
-                    let units = v * scale;
-                    if !(-32767.0..=32767.0).contains(&units) {
-                        self.clipped += 1;
-                    }
-                    let rounded = (units.clamp(-32767.0, 32767.0) + ROUNDER) - ROUNDER;
-                    self.bytes.extend_from_slice(&(rounded as i16).to_le_bytes());
-                }
-            }
-        }
-        self.data.write_all(&self.bytes)?;
-        Ok(())
+        let encoder = self.encoder();
+        let mut bytes = std::mem::take(&mut self.bytes);
+        bytes.resize(samples.len() * encoder.bytes_per_sample(), 0);
+        let clipped = encoder.encode(samples, &mut bytes);
+        let written = self.write_encoded(&bytes, clipped);
+        self.bytes = bytes;
+        written
+    }
+
+    /// Append frames already encoded by [`RecordingWriter::encoder`], of
+    /// which `clipped` samples were clipped.
+    pub fn write_encoded(&mut self, bytes: &[u8], clipped: u64) -> std::io::Result<()> {
+        use std::io::Write;
+        debug_assert_eq!(bytes.len() % (self.n_channels * self.encoder().bytes_per_sample()), 0);
+        self.clipped += clipped;
+        self.data.write_all(bytes)
     }
 
     /// Samples clipped to the i16 range so far.
