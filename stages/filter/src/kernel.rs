@@ -13,6 +13,7 @@ use crate::design::{self, Section};
 use crate::params::{Design, ValidFilterParams};
 use rustfft::num_complex::Complex64;
 use rustfft::{Fft, FftPlanner};
+use spikeyard_contract::noise::RunningMedian;
 use std::sync::Arc;
 
 /// Residual of a band-pass pole's transient that chunk margins allow.
@@ -113,52 +114,50 @@ impl FilterEngine {
         self.fir.is_none()
     }
 
-    /// Filter up to [`BLOCK_LANES`] channels of a time-major chunk at once:
-    /// the same computation as [`FilterEngine::filter_channel`] on each of
-    /// `first_channel..first_channel + lanes` (`frames` holds `n_channels`
-    /// channels). `buffer` ends up holding the padded range, filtered, one
-    /// [`Lanes`] per frame (unused lanes 0); returns the index in it of the
-    /// chunk's first frame (the padding actually added before it).
-    #[allow(clippy::too_many_arguments)]
-    pub fn filter_block(
-        &self,
-        frames: &[f32],
-        n_channels: usize,
-        first_channel: usize,
-        lanes: usize,
-        pad_before: usize,
-        pad_after: usize,
-        buffer: &mut Vec<Lanes>,
-    ) -> usize {
-        let n = frames.len() / n_channels;
-        buffer.clear();
+    /// Filter a block of up to [`BLOCK_LANES`] channels at once: the same
+    /// computation as [`FilterEngine::filter_channel`] on each lane. `rows`
+    /// holds `before` rows of room, the frames read (see [`scatter_frames`]),
+    /// and `after` rows of room; the room is filled with the odd extension
+    /// and everything is filtered in place.
+    pub fn filter_block(&self, rows: &mut [Lanes], before: usize, after: usize) {
+        let n = rows.len() - before - after;
         if n == 0 {
-            return 0;
+            return;
         }
-        let (before, after) = (pad_before.min(n - 1), pad_after.min(n - 1));
-        let frame = |frame: usize| &frames[frame * n_channels + first_channel..][..lanes];
+        debug_assert!(before < n && after < n, "odd extension reaches at most n - 1 frames");
         // Odd extension in f64 then rounded, as `extend_odd` does.
-        let reflect = |about: &[f32], x: &[f32]| -> Lanes {
-            let mut values = [0.0; BLOCK_LANES];
-            for ((v, a), x) in values.iter_mut().zip(about).zip(x) {
-                *v = (2.0 * *a as f64 - *x as f64) as f32;
-            }
-            values
+        let reflect = |about: &Lanes, x: &Lanes| -> Lanes {
+            std::array::from_fn(|l| (2.0 * about[l] as f64 - x[l] as f64) as f32)
         };
-        buffer.extend((1..=before).rev().map(|i| reflect(frame(0), frame(i))));
-        buffer.extend((0..n).map(|i| match <&Lanes>::try_from(frame(i)) {
-            // A fixed-size copy, inlined (not a library call per frame).
-            Ok(full) => *full,
-            Err(_) => {
-                let mut values = [0.0; BLOCK_LANES];
-                values[..lanes].copy_from_slice(frame(i));
-                values
-            }
-        }));
-        buffer.extend((1..=after).map(|i| reflect(frame(n - 1), frame(n - 1 - i))));
-        self.iir.run_block(buffer.iter_mut());
-        self.iir.run_block(buffer.iter_mut().rev());
-        before
+        let (first, last) = (rows[before], rows[before + n - 1]);
+        for i in 1..=before {
+            rows[before - i] = reflect(&first, &rows[before + i]);
+        }
+        for i in 1..=after {
+            rows[before + n - 1 + i] = reflect(&last, &rows[before + n - 1 - i]);
+        }
+        self.iir.run_block(rows.iter_mut());
+        self.iir.run_block(rows.iter_mut().rev());
+    }
+}
+
+/// Copy the frames of a time-major run (`frames`, `n_channels` wide) into
+/// blocks of channels: row k of `blocks[b]` gets frame k's channels
+/// `b · BLOCK_LANES ..`, unused lanes 0. Reading frame by frame keeps the
+/// reads sequential, which matters once a chunk is larger than the caches.
+pub fn scatter_frames(frames: &[f32], n_channels: usize, blocks: &mut [&mut [Lanes]]) {
+    for (k, frame) in frames.chunks_exact(n_channels).enumerate() {
+        for (values, rows) in frame.chunks(BLOCK_LANES).zip(blocks.iter_mut()) {
+            rows[k] = match <&Lanes>::try_from(values) {
+                // A fixed-size copy, inlined (not a library call per frame and block).
+                Ok(full) => *full,
+                Err(_) => {
+                    let mut row = [0.0; BLOCK_LANES];
+                    row[..values.len()].copy_from_slice(values);
+                    row
+                }
+            };
+        }
     }
 }
 
@@ -391,30 +390,50 @@ impl MedianReference {
         MedianReference { groups: groups.to_vec(), members }
     }
 
-    /// Subtract the reference from one frame; `values` is scratch.
-    pub fn subtract(&self, frame: &mut [f32], values: &mut Vec<f32>) {
-        if let [members] = self.members.as_slice() {
-            let median = Self::median(frame, members, values);
+    /// Subtract the reference from one frame. `scratch` carries the
+    /// previous frame's medians from one call to the next (the answer never
+    /// depends on it).
+    pub fn subtract(&self, frame: &mut [f32], scratch: &mut ReferenceScratch) {
+        scratch.medians.resize_with(self.members.len(), RunningMedian::default);
+        if let ([members], [running]) = (self.members.as_slice(), scratch.medians.as_mut_slice()) {
+            let median = if members.len() == frame.len() {
+                running.median(frame)
+            } else {
+                scratch.values.clear();
+                scratch.values.extend(members.iter().map(|&c| frame[c]));
+                running.median(&scratch.values)
+            };
+            // A group without usable channels gets 0.
+            let median = if median.is_nan() { 0.0 } else { median as f32 };
             frame.iter_mut().for_each(|v| *v -= median);
             return;
         }
-        let medians: Vec<f32> = self.members.iter().map(|members| Self::median(frame, members, values)).collect();
+        let medians: Vec<f32> = self
+            .members
+            .iter()
+            .zip(scratch.medians.iter_mut())
+            .map(|(members, running)| {
+                scratch.values.clear();
+                scratch.values.extend(members.iter().map(|&c| frame[c]));
+                let median = running.median(&scratch.values);
+                if median.is_nan() {
+                    0.0
+                } else {
+                    median as f32
+                }
+            })
+            .collect();
         for (v, g) in frame.iter_mut().zip(&self.groups) {
             *v -= medians[*g];
         }
     }
+}
 
-    fn median(frame: &[f32], members: &[usize], values: &mut Vec<f32>) -> f32 {
-        values.clear();
-        values.extend(members.iter().map(|&c| frame[c]));
-        // The filtered signal is finite.
-        let median = spikeyard_contract::noise::median_of_finite(values);
-        if median.is_nan() {
-            0.0
-        } else {
-            median as f32
-        }
-    }
+/// Per-thread state of [`MedianReference::subtract`].
+#[derive(Default)]
+pub struct ReferenceScratch {
+    values: Vec<f32>,
+    medians: Vec<RunningMedian>,
 }
 
 #[cfg(test)]
@@ -474,35 +493,29 @@ mod tests {
             crate::params::FilterParams { notch_hz: 50.0, ..Default::default() },
         ] {
             let engine = engine(params, 20000.0);
-            let n_channels = 11;
+            // A full block and a partial one.
+            let n_channels = BLOCK_LANES + 8;
             let n = 3000;
             let frames: Vec<f32> = junk_seeded(n * n_channels, 3).into_iter().map(|v| (v * 100.0) as f32).collect();
             let (pad_before, pad_after, core_offset, core_frames) = (engine.margin_frames(), 40, 100, 2500);
-            let mut buffer = vec![[7.0; BLOCK_LANES]; 3];
-            for (first, lanes) in [(0, 8), (8, 3)] {
-                let before = engine.filter_block(&frames, n_channels, first, lanes, pad_before, pad_after, &mut buffer);
-                assert_eq!(before, pad_before.min(n - 1));
-                for lane in 0..lanes {
-                    let column: Vec<f32> = frames.iter().skip(first + lane).step_by(n_channels).copied().collect();
-                    let mut plain = vec![0.0f32; core_frames];
-                    engine.filter_channel(
-                        &column,
-                        pad_before,
-                        pad_after,
-                        core_offset,
-                        &mut plain,
-                        &mut Scratch::default(),
-                    );
-                    for k in 0..core_frames {
-                        assert_eq!(
-                            buffer[before + core_offset + k][lane],
-                            plain[k],
-                            "channel {} frame {k}",
-                            first + lane
-                        );
-                    }
+            let (before, after) = (pad_before.min(n - 1), pad_after.min(n - 1));
+            let mut blocks = vec![vec![[7.0; BLOCK_LANES]; before + n + after]; 2];
+            let mut rows: Vec<&mut [Lanes]> = blocks.iter_mut().map(|b| &mut b[before..before + n]).collect();
+            scatter_frames(&frames, n_channels, &mut rows);
+            for block in blocks.iter_mut() {
+                engine.filter_block(block, before, after);
+            }
+            for channel in 0..n_channels {
+                let column: Vec<f32> = frames.iter().skip(channel).step_by(n_channels).copied().collect();
+                let mut plain = vec![0.0f32; core_frames];
+                engine.filter_channel(&column, pad_before, pad_after, core_offset, &mut plain, &mut Scratch::default());
+                let rows = &blocks[channel / BLOCK_LANES][before + core_offset..];
+                for k in 0..core_frames {
+                    assert_eq!(rows[k][channel % BLOCK_LANES], plain[k], "channel {channel} frame {k}");
                 }
             }
+            // Unused lanes are zero.
+            assert!(blocks[1][before..before + n].iter().all(|row| row[8..].iter().all(|v| *v == 0.0)));
         }
     }
 
@@ -588,11 +601,15 @@ mod tests {
     fn median_reference_by_group_ignores_unusable_channels() {
         // One frame, four channels in two groups; channel 1 unusable.
         let mut frame = vec![1.0f32, 100.0, 3.0, 5.0];
-        MedianReference::new(&[0, 0, 1, 1], &[true, false, true, true]).subtract(&mut frame, &mut Vec::new());
+        let mut scratch = ReferenceScratch::default();
+        MedianReference::new(&[0, 0, 1, 1], &[true, false, true, true]).subtract(&mut frame, &mut scratch);
         assert_eq!(frame, vec![0.0, 99.0, -1.0, 1.0]);
         // One group, channel 2 unusable: median of 1, 100 and 5.
         let mut frame = vec![1.0f32, 100.0, -50.0, 5.0];
-        MedianReference::new(&[0; 4], &[true, true, false, true]).subtract(&mut frame, &mut Vec::new());
+        MedianReference::new(&[0; 4], &[true, true, false, true]).subtract(&mut frame, &mut scratch);
         assert_eq!(frame, vec![-4.0, 95.0, -55.0, 0.0]);
+        // All four usable: the median of -4, 95, -55 and 0.
+        MedianReference::new(&[0; 4], &[true; 4]).subtract(&mut frame, &mut scratch);
+        assert_eq!(frame, vec![-2.0, 97.0, -53.0, 2.0]);
     }
 }

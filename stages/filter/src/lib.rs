@@ -128,18 +128,26 @@ pub fn filter_chunk(
     let raw: &[f32] = &filtered.raw;
     if engine.supports_blocks() {
         filtered.columns.clear();
+        let n = chunk.read_frames();
+        let (before, after) = (pad_before.min(n.saturating_sub(1)), pad_after.min(n.saturating_sub(1)));
         filtered.blocks.resize_with(n_channels.div_ceil(BLOCK_LANES), Vec::new);
-        let before = filtered
-            .blocks
-            .par_iter_mut()
-            .enumerate()
-            .map(|(block, buffer)| {
-                let first = block * BLOCK_LANES;
-                let lanes = BLOCK_LANES.min(n_channels - first);
-                engine.filter_block(raw, n_channels, first, lanes, pad_before, pad_after, buffer)
-            })
-            .max()
-            .unwrap_or(0);
+        // Frames into the blocks, in parallel over runs of frames; the rows of
+        // each block are split into the same runs.
+        const FRAMES_PER_TASK: usize = 1024;
+        let mut runs: Vec<Vec<&mut [Lanes]>> = Vec::new();
+        for rows in filtered.blocks.iter_mut() {
+            rows.resize(before + n + after, [0.0; BLOCK_LANES]);
+            for (task, run) in rows[before..before + n].chunks_mut(FRAMES_PER_TASK).enumerate() {
+                if runs.len() <= task {
+                    runs.push(Vec::new());
+                }
+                runs[task].push(run);
+            }
+        }
+        runs.into_par_iter().zip(raw.par_chunks(n_channels * FRAMES_PER_TASK)).for_each(|(mut blocks, frames)| {
+            kernel::scatter_frames(frames, n_channels, &mut blocks);
+        });
+        filtered.blocks.par_iter_mut().for_each(|rows| engine.filter_block(rows, before, after));
         filtered.core_row = before + core_offset;
         return Ok(());
     }
@@ -386,13 +394,13 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
                 .par_chunks_mut(frame_bytes * FRAMES_PER_TASK)
                 .enumerate()
                 .map_init(
-                    || (vec![0.0f32; recording.n_channels], Vec::new()),
-                    |(row, values), (task, out)| {
+                    || (vec![0.0f32; recording.n_channels], kernel::ReferenceScratch::default()),
+                    |(row, scratch), (task, out)| {
                         let mut clipped = 0;
                         for (k, out) in out.chunks_exact_mut(frame_bytes).enumerate() {
                             filtered.row_into(task * FRAMES_PER_TASK + k, row);
                             if let Some(reference) = &reference {
-                                reference.subtract(row, values);
+                                reference.subtract(row, scratch);
                             }
                             clipped += encoder.encode(row, out);
                         }

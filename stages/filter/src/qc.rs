@@ -44,26 +44,40 @@ impl Welch {
     }
 
     /// Add this signal's segment periodograms into `sum` (length `n_bins`);
-    /// returns how many segments were added.
+    /// returns how many segments were added. Two real segments share one
+    /// complex FFT (a + i·b), separated by the transform's symmetry:
+    /// A[k] = (Z[k] + Z*[N−k]) / 2 and B[k] = (Z[k] − Z*[N−k]) / 2i.
     pub fn accumulate(&self, signal: &[f32], sum: &mut [f64], work: &mut Vec<Complex64>) -> usize {
-        let step = self.segment / 2;
-        let mut count = 0;
-        let mut start = 0;
-        while start + self.segment <= signal.len() {
-            let piece = &signal[start..start + self.segment];
-            let mean = piece.iter().map(|&v| v as f64).sum::<f64>() / self.segment as f64;
+        let n = self.segment;
+        let starts: Vec<usize> = (0..).map(|k| k * (n / 2)).take_while(|s| s + n <= signal.len()).collect();
+        let windowed = |start: usize| {
+            let piece = &signal[start..start + n];
+            let mean = piece.iter().map(|&v| v as f64).sum::<f64>() / n as f64;
+            piece.iter().zip(&self.window).map(move |(&v, w)| (v as f64 - mean) * w)
+        };
+        let last = n / 2;
+        let mut add = |bin: usize, power: f64| {
+            let one_sided = if bin == 0 || bin == last { 1.0 } else { 2.0 };
+            sum[bin] += power * self.scale * one_sided;
+        };
+        for pair in starts.chunks(2) {
             work.clear();
-            work.extend(piece.iter().zip(&self.window).map(|(&v, w)| Complex64::new((v as f64 - mean) * w, 0.0)));
-            self.fft.process(work);
-            let last = self.segment / 2;
-            for (bin, s) in sum.iter_mut().enumerate() {
-                let one_sided = if bin == 0 || bin == last { 1.0 } else { 2.0 };
-                *s += work[bin].norm_sqr() * self.scale * one_sided;
+            match *pair {
+                [a, b] => work.extend(windowed(a).zip(windowed(b)).map(|(x, y)| Complex64::new(x, y))),
+                _ => work.extend(windowed(pair[0]).map(|x| Complex64::new(x, 0.0))),
             }
-            count += 1;
-            start += step;
+            self.fft.process(work);
+            for bin in 0..=last {
+                let (z, mirror) = (work[bin], work[(n - bin) % n].conj());
+                if pair.len() == 2 {
+                    add(bin, (z + mirror).norm_sqr() / 4.0);
+                    add(bin, (z - mirror).norm_sqr() / 4.0);
+                } else {
+                    add(bin, z.norm_sqr());
+                }
+            }
         }
-        count
+        starts.len()
     }
 
     /// Power in µV² between two frequencies (bins whose centre lies in [low, high)).
@@ -137,6 +151,37 @@ mod tests {
         assert!((total - amplitude * amplitude / 2.0).abs() < 0.01 * 200.0, "{total}");
         let near = welch.band_power(&psd, 980.0, 1020.0);
         assert!(near > 0.99 * total);
+    }
+
+    // Two segments per complex FFT give each segment's own periodogram:
+    // against one FFT per segment, for an odd number of segments.
+    #[test]
+    fn paired_segments_match_one_fft_per_segment() {
+        let fs = 20000.0;
+        let mut rng = spikeyard_contract::testing::TestRng::new(4);
+        let signal: Vec<f32> = (0..5 * 1024).map(|_| (3.0 + 10.0 * rng.normal()) as f32).collect();
+        let welch = Welch::new(2048, fs);
+        let mut sum = vec![0.0; welch.n_bins()];
+        assert_eq!(welch.accumulate(&signal, &mut sum, &mut vec![]), 4);
+        let mut odd = vec![0.0; welch.n_bins()];
+        assert_eq!(welch.accumulate(&signal[..4 * 1024], &mut odd, &mut vec![]), 3);
+        for (signal, paired) in [(&signal[..], &sum), (&signal[..4 * 1024], &odd)] {
+            let mut plain = vec![0.0; welch.n_bins()];
+            for start in (0..).map(|k| k * 1024).take_while(|s| s + 2048 <= signal.len()) {
+                let piece = &signal[start..start + 2048];
+                let mean = piece.iter().map(|&v| v as f64).sum::<f64>() / 2048.0;
+                let mut work: Vec<Complex64> =
+                    piece.iter().zip(&welch.window).map(|(&v, w)| Complex64::new((v as f64 - mean) * w, 0.0)).collect();
+                welch.fft.process(&mut work);
+                for (bin, p) in plain.iter_mut().enumerate() {
+                    let one_sided = if bin == 0 || bin == 1024 { 1.0 } else { 2.0 };
+                    *p += work[bin].norm_sqr() * welch.scale * one_sided;
+                }
+            }
+            for (a, b) in paired.iter().zip(&plain) {
+                assert!((a - b).abs() <= 1e-9 * b.abs().max(1e-3), "{a} vs {b}");
+            }
+        }
     }
 
     #[test]
