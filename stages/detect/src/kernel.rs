@@ -64,6 +64,14 @@ pub fn find_crossings(
             for k in from..(from + FRAMES_PER_TASK).min(end) {
                 let before = &frames[(k - 1) * n_channels..k * n_channels];
                 let now = &frames[k * n_channels..(k + 1) * n_channels];
+                // Most frames cross nowhere: a branch-free test over the
+                // whole frame (vectorized) first, the search only on a hit.
+                let crosses = |((&b, &x), &t): ((&f32, &f32), &f32)| {
+                    (negative & (b >= -t) & (x < -t)) | (positive & (b <= t) & (x > t))
+                };
+                if !before.iter().zip(now).zip(thresholds_uv).fold(false, |any, v| any | crosses(v)) {
+                    continue;
+                }
                 for (c, ((&b, &x), &t)) in before.iter().zip(now).zip(thresholds_uv).enumerate() {
                     if negative & (b >= -t) & (x < -t) {
                         found.push((k, c, -1.0));
