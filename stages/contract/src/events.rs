@@ -91,6 +91,13 @@ pub struct EventWindow<'a> {
 }
 
 impl EventWindow<'_> {
+    /// Every channel at absolute `frame`, clamped to the frames held.
+    #[inline]
+    pub fn row(&self, frame: i64, n_channels: usize) -> &[f32] {
+        let local = (frame - self.first_frame as i64).clamp(0, self.n_frames as i64 - 1) as usize;
+        &self.frames[local * n_channels..(local + 1) * n_channels]
+    }
+
     /// Value at absolute `frame` on `channel`, clamped to the frames held.
     #[inline]
     pub fn value(&self, frame: i64, channel: usize, n_channels: usize) -> f32 {

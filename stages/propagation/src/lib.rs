@@ -78,6 +78,7 @@ pub fn footprints(
     let after = (params.after_ms * 1e-3 * fs).round() as usize;
     let length = before + after + 1;
     let n_channels = recording.n_channels;
+    // Per unit, frame-major: sums[unit][k * n_channels + channel].
     let mut sums = vec![vec![0.0f64; n_channels * length]; n_units];
     let mut counts = vec![0usize; n_units];
     let events = spikes
@@ -87,16 +88,32 @@ pub fn footprints(
     let chunk_frames = (params.chunk_seconds * fs).round().max(1.0) as usize;
     for_each_event_window(recording, events, origin, chunk_frames, before.max(after) + 1, |window| {
         for event in window.events {
-            let unit = spikes[event.index as usize].0;
-            counts[unit] += 1;
-            let sum = &mut sums[unit];
-            for k in 0..length {
-                let frame = event.sample as i64 - before as i64 + k as i64;
-                for channel in 0..n_channels {
-                    sum[channel * length + k] += window.value(frame, channel, n_channels) as f64;
+            counts[spikes[event.index as usize].0] += 1;
+        }
+        // In parallel over runs of offsets k: each run adds its rows of every
+        // unit's sum, spike after spike in order (the same additions in the
+        // same order whatever the thread count).
+        const ROWS_PER_TASK: usize = 8;
+        let mut runs: Vec<Vec<&mut [f64]>> = Vec::new();
+        for sum in sums.iter_mut() {
+            for (task, rows) in sum.chunks_mut(ROWS_PER_TASK * n_channels).enumerate() {
+                if runs.len() <= task {
+                    runs.push(Vec::new());
                 }
+                runs[task].push(rows);
             }
         }
+        runs.into_par_iter().enumerate().for_each(|(task, mut rows)| {
+            for event in window.events {
+                let rows = &mut rows[spikes[event.index as usize].0];
+                for (j, row) in rows.chunks_exact_mut(n_channels).enumerate() {
+                    let frame = event.sample as i64 - before as i64 + (task * ROWS_PER_TASK + j) as i64;
+                    for (s, v) in row.iter_mut().zip(window.row(frame, n_channels)) {
+                        *s += *v as f64;
+                    }
+                }
+            }
+        });
         Ok::<(), StageFailure>(())
     })?;
     Ok(sums
@@ -106,7 +123,7 @@ pub fn footprints(
             let electrodes = (0..n_channels)
                 .map(|channel| {
                     let average: Vec<f64> =
-                        sum[channel * length..(channel + 1) * length].iter().map(|v| v / n.max(1) as f64).collect();
+                        sum.iter().skip(channel).step_by(n_channels).map(|v| v / n.max(1) as f64).collect();
                     let (position, trough) = trough(&average);
                     let latency_ms = (position - before as f64) / fs * 1e3;
                     let standard_error =
