@@ -650,6 +650,10 @@ pub enum Storage {
     I16 { microvolts_per_unit: f64 },
 }
 
+/// How much a [`RecordingWriter`] writes between requests to start writeback.
+#[cfg(target_os = "linux")]
+const WRITEBACK_EVERY_BYTES: u64 = 64 << 20;
+
 /// Microvolts to stored bytes for one [`Storage`].
 #[derive(Debug, Clone, Copy)]
 pub struct SampleEncoder {
@@ -719,6 +723,10 @@ pub struct RecordingWriter {
     storage: Storage,
     clipped: u64,
     bytes: Vec<u8>,
+    /// Bytes written so far, and how many of them the disk was asked to
+    /// take (see [`RecordingWriter::write_encoded`]).
+    written: u64,
+    writeback_started: u64,
 }
 
 impl RecordingWriter {
@@ -741,6 +749,8 @@ impl RecordingWriter {
             storage,
             clipped: 0,
             bytes: Vec::new(),
+            written: 0,
+            writeback_started: 0,
         })
     }
 
@@ -770,7 +780,30 @@ impl RecordingWriter {
         use std::io::Write;
         debug_assert_eq!(bytes.len() % (self.n_channels * self.encoder().bytes_per_sample()), 0);
         self.clipped += clipped;
-        self.data.write_all(bytes)
+        self.data.write_all(bytes)?;
+        self.written += bytes.len() as u64;
+        // Start the disk writes every so often instead of leaving gigabytes
+        // dirty for the final sync: the sync at `finish` then waits for the
+        // last stretch only.
+        #[cfg(target_os = "linux")]
+        if self.written - self.writeback_started >= WRITEBACK_EVERY_BYTES {
+            use std::os::fd::AsRawFd;
+            self.data.flush()?;
+            let (start, length) = (self.writeback_started, self.written - self.writeback_started);
+            // SAFETY: a system call on this writer's own open descriptor; it
+            // only starts writeback of the range and touches no memory of ours.
+            // Its result is advice only: `finish` syncs everything anyway.
+            let _ = unsafe {
+                libc::sync_file_range(
+                    self.data.get_ref().as_raw_fd(),
+                    start as libc::off64_t,
+                    length as libc::off64_t,
+                    libc::SYNC_FILE_RANGE_WRITE,
+                )
+            };
+            self.writeback_started = self.written;
+        }
+        Ok(())
     }
 
     /// Samples clipped to the i16 range so far.

@@ -95,13 +95,13 @@ impl FilteredChunk {
             return;
         }
         out.resize(self.n_channels * self.core_frames, 0.0);
-        for (columns, rows) in out.chunks_mut(BLOCK_LANES * self.core_frames.max(1)).zip(&self.blocks) {
+        out.par_chunks_mut(BLOCK_LANES * self.core_frames.max(1)).zip(&self.blocks).for_each(|(columns, rows)| {
             for (frame, row) in rows[self.core_row..self.core_row + self.core_frames].iter().enumerate() {
                 for (lane, v) in row.iter().take(columns.len() / self.core_frames).enumerate() {
                     columns[lane * self.core_frames + frame] = *v;
                 }
             }
-        }
+        });
     }
 }
 
