@@ -46,7 +46,7 @@ impl Welch {
     /// Add this signal's segment periodograms into `sum` (length `n_bins`);
     /// returns how many segments were added. Two real segments share one
     /// complex FFT (a + i·b), separated by the transform's symmetry:
-    /// A[k] = (Z[k] + Z*[N−k]) / 2 and B[k] = (Z[k] − Z*[N−k]) / 2i.
+    /// `A[k] = (Z[k] + conj(Z[N − k])) / 2` and `B[k] = (Z[k] − conj(Z[N − k])) / 2i`.
     pub fn accumulate(&self, signal: &[f32], sum: &mut [f64], work: &mut Vec<Complex64>) -> usize {
         let n = self.segment;
         let starts: Vec<usize> = (0..).map(|k| k * (n / 2)).take_while(|s| s + n <= signal.len()).collect();
