@@ -326,6 +326,46 @@ impl Recording {
         Ok(())
     }
 
+    /// Frames `start..end` in runs of `run_frames`, in parallel: run r (frames
+    /// `start + r·run_frames ..`, the last one shorter) is handed to
+    /// `visit(r, frames)` as µV, time-major, the same values
+    /// [`Recording::read_frames`] gives. For time-major i16 files each run is
+    /// converted straight from the mapped file into a small per-thread
+    /// buffer, so a caller that rearranges the frames never sees the whole
+    /// range in f32; other formats are read whole first.
+    ///
+    /// # Errors
+    /// As [`Recording::read_frames`].
+    pub fn visit_frame_runs(
+        &self,
+        start: u64,
+        end: u64,
+        run_frames: usize,
+        visit: impl Fn(usize, &[f32]) + Sync,
+    ) -> Result<(), RecordingError> {
+        use rayon::prelude::*;
+        let run_frames = run_frames.max(1);
+        if self.dtype == Dtype::I16 && self.layout == Layout::TimeMajor {
+            let (gain, offset) = (self.microvolts_per_unit, self.offset);
+            let run_bytes = run_frames * self.n_channels * 2;
+            return self.visit_time_major(start, end, |bytes| {
+                bytes.par_chunks(run_bytes).enumerate().for_each_init(Vec::new, |frames, (run, bytes)| {
+                    frames.clear();
+                    frames.extend(
+                        bytes
+                            .chunks_exact(2)
+                            .map(|b| ((i16::from_le_bytes([b[0], b[1]]) as f64 - offset) * gain) as f32),
+                    );
+                    visit(run, frames);
+                })
+            });
+        }
+        let mut frames = Vec::new();
+        self.read_frames(start, end, &mut frames)?;
+        frames.par_chunks(run_frames * self.n_channels).enumerate().for_each(|(run, frames)| visit(run, frames));
+        Ok(())
+    }
+
     /// Read frames `start..end` as the stored numbers (no gain, no offset),
     /// time-major, for checks of the stored range.
     ///
@@ -903,6 +943,18 @@ mod layout_tests {
                 assert_eq!(recording.n_frames, 2);
                 assert_eq!(frames(&recording, 0, 2), expected, "{dtype} {layout}");
                 assert_eq!(frames(&recording, 1, 2), expected[3..].to_vec(), "{dtype} {layout}");
+                // Run by run: runs of one frame, and one run longer than the range.
+                for run_frames in [1, 5] {
+                    let runs = std::sync::Mutex::new(Vec::new());
+                    recording
+                        .visit_frame_runs(0, 2, run_frames, |r, f| runs.lock().unwrap().push((r, f.to_vec())))
+                        .unwrap();
+                    let mut runs = runs.into_inner().unwrap();
+                    runs.sort_by_key(|(r, _)| *r);
+                    let joined: Vec<f32> = runs.iter().flat_map(|(_, f)| f.clone()).collect();
+                    assert_eq!(runs.len(), 2usize.div_ceil(run_frames), "{dtype} {layout}");
+                    assert_eq!(joined, expected, "{dtype} {layout}, runs of {run_frames}");
+                }
             }
         }
     }

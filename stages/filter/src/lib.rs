@@ -48,8 +48,6 @@ const PSD_RESOLUTION_HZ: f64 = 10.0;
 /// works in; the buffers are reused from chunk to chunk.
 #[derive(Default)]
 pub struct FilteredChunk {
-    /// The frames read for the chunk (time-major, margins included).
-    raw: Vec<f32>,
     n_channels: usize,
     core_frames: usize,
     /// Block path: per block of [`kernel::BLOCK_LANES`] channels, the
@@ -63,11 +61,6 @@ pub struct FilteredChunk {
 impl FilteredChunk {
     pub fn core_frames(&self) -> usize {
         self.core_frames
-    }
-
-    /// The raw frames read for the chunk, time-major, margins included.
-    pub fn raw(&self) -> &[f32] {
-        &self.raw
     }
 
     /// Frame `frame` of the core, every channel, into `row`.
@@ -116,7 +109,6 @@ pub fn filter_chunk(
     chunk: &Chunk,
     filtered: &mut FilteredChunk,
 ) -> Result<(), RecordingError> {
-    recording.read_frames(chunk.read_start, chunk.read_end, &mut filtered.raw)?;
     let n_channels = recording.n_channels;
     let margin = engine.margin_frames() as u64;
     let core_offset = (chunk.core_start - chunk.read_start) as usize;
@@ -125,35 +117,39 @@ pub fn filter_chunk(
     let core_frames = chunk.core_frames();
     filtered.n_channels = n_channels;
     filtered.core_frames = core_frames;
-    let raw: &[f32] = &filtered.raw;
     if engine.supports_blocks() {
         filtered.columns.clear();
         let n = chunk.read_frames();
         let (before, after) = (pad_before.min(n.saturating_sub(1)), pad_after.min(n.saturating_sub(1)));
         filtered.blocks.resize_with(n_channels.div_ceil(BLOCK_LANES), Vec::new);
-        // Frames into the blocks, in parallel over runs of frames; the rows of
-        // each block are split into the same runs.
-        const FRAMES_PER_TASK: usize = 1024;
+        // Frames into the blocks run by run, in parallel, straight from the
+        // reader; the rows of each block are split into the same runs.
+        const FRAMES_PER_RUN: usize = 256;
         let mut runs: Vec<Vec<&mut [Lanes]>> = Vec::new();
         for rows in filtered.blocks.iter_mut() {
             rows.resize(before + n + after, [0.0; BLOCK_LANES]);
-            for (task, run) in rows[before..before + n].chunks_mut(FRAMES_PER_TASK).enumerate() {
-                if runs.len() <= task {
+            for (run, rows) in rows[before..before + n].chunks_mut(FRAMES_PER_RUN).enumerate() {
+                if runs.len() <= run {
                     runs.push(Vec::new());
                 }
-                runs[task].push(run);
+                runs[run].push(rows);
             }
         }
-        runs.into_par_iter().zip(raw.par_chunks(n_channels * FRAMES_PER_TASK)).for_each(|(mut blocks, frames)| {
+        // Each run's rows are taken by the one call that fills them.
+        let runs: Vec<std::sync::Mutex<Vec<&mut [Lanes]>>> = runs.into_iter().map(std::sync::Mutex::new).collect();
+        recording.visit_frame_runs(chunk.read_start, chunk.read_end, FRAMES_PER_RUN, |run, frames| {
+            let mut blocks = runs[run].lock().unwrap_or_else(|poisoned| poisoned.into_inner());
             kernel::scatter_frames(frames, n_channels, &mut blocks);
-        });
+        })?;
+        drop(runs);
         filtered.blocks.par_iter_mut().for_each(|rows| engine.filter_block(rows, before, after));
         filtered.core_row = before + core_offset;
         return Ok(());
     }
     filtered.blocks.clear();
-    let mut by_channel = Vec::new();
-    to_channel_major(raw, n_channels, &mut by_channel);
+    let (mut raw, mut by_channel) = (Vec::new(), Vec::new());
+    recording.read_frames(chunk.read_start, chunk.read_end, &mut raw)?;
+    to_channel_major(&raw, n_channels, &mut by_channel);
     filtered.columns.resize(n_channels * core_frames, 0.0);
     filtered
         .columns
@@ -197,13 +193,12 @@ pub fn measure_qc(
     let mut psd_sums = vec![vec![0.0f64; welch.n_bins()]; n_channels];
     let mut segments = vec![0usize; n_channels];
     let mut filtered = FilteredChunk::default();
-    let (mut filtered_columns, mut raw_columns) = (Vec::new(), Vec::new());
+    let (mut raw, mut filtered_columns, mut raw_columns) = (Vec::new(), Vec::new(), Vec::new());
     for window in &windows {
         filter_chunk(engine, recording, window, &mut filtered)?;
-        let core_offset = (window.core_start - window.read_start) as usize * n_channels;
-        let raw_core = &filtered.raw()[core_offset..core_offset + window.core_frames() * n_channels];
+        recording.read_frames(window.core_start, window.core_end, &mut raw)?;
         filtered.to_channel_major(&mut filtered_columns);
-        to_channel_major(raw_core, n_channels, &mut raw_columns);
+        to_channel_major(&raw, n_channels, &mut raw_columns);
         let per_channel: Vec<(f64, f64, Vec<f64>, usize)> = filtered_columns
             .par_chunks_mut(window_frames)
             .zip(raw_columns.par_chunks(window_frames))
