@@ -211,16 +211,22 @@ fn measure_templates(
     let margin = params.template_before_frames.max(params.template_after_frames) + 1;
     let n_channels = recording.n_channels;
     for_each_event_window(recording, events, origin, params.chunk_frames, margin, |window| {
+        let unit_of = |event: &EventRecord| spikes[event.index as usize].unit as usize;
         for event in window.events {
-            let unit = spikes[event.index as usize].unit as usize;
-            averaged[unit] += 1;
-            for (row, &channel) in sums[unit].iter_mut().zip(&unit_channels[unit]) {
-                for (k, value) in row.iter_mut().enumerate() {
-                    let frame = event.sample as i64 - params.template_before_frames as i64 + k as i64;
-                    *value += window.value(frame, channel, n_channels) as f64;
+            averaged[unit_of(event)] += 1;
+        }
+        // In parallel over units, each adding its own spikes in order.
+        sums.par_iter_mut().enumerate().for_each(|(unit, rows)| {
+            for event in window.events.iter().filter(|e| unit_of(e) == unit) {
+                for k in 0..length {
+                    let frame =
+                        window.row(event.sample as i64 - params.template_before_frames as i64 + k as i64, n_channels);
+                    for (row, &channel) in rows.iter_mut().zip(&unit_channels[unit]) {
+                        row[k] += frame[channel] as f64;
+                    }
                 }
             }
-        }
+        });
         Ok::<(), StageFailure>(())
     })?;
     Ok(sums
