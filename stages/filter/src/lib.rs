@@ -511,6 +511,33 @@ mod tests {
         }
     }
 
+    // The channel-major view (QC) holds what the frame rows hold, across a
+    // full block and a partial one, for the block and the channel paths.
+    #[test]
+    fn channel_major_view_matches_the_rows() {
+        let dir = tempfile::tempdir().unwrap();
+        let fs = 20000.0;
+        let n_channels = BLOCK_LANES + 5;
+        let recording = noisy_recording(dir.path(), fs, n_channels, 0.5);
+        for params in [FilterParams::default(), FilterParams { design: Design::Fir, ..Default::default() }] {
+            let engine = FilterEngine::new(&params.check(fs).unwrap(), fs);
+            let chunk = &recording.chunks(3000, engine.margin_frames())[1];
+            let mut filtered = FilteredChunk::default();
+            filter_chunk(&engine, &recording, chunk, &mut filtered).unwrap();
+            let mut columns = Vec::new();
+            filtered.to_channel_major(&mut columns);
+            let frames = filtered.core_frames();
+            assert_eq!(columns.len(), n_channels * frames);
+            let mut row = vec![0.0; n_channels];
+            for frame in 0..frames {
+                filtered.row_into(frame, &mut row);
+                for (channel, v) in row.iter().enumerate() {
+                    assert_eq!(columns[channel * frames + frame], *v, "{:?}", params.design);
+                }
+            }
+        }
+    }
+
     /// RMS of the output over whole periods far from the edges, divided by
     /// the input's.
     fn zero_phase_gain(frequency_hz: f64, fs: f64) -> f64 {
