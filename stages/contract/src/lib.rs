@@ -15,6 +15,7 @@
 //! - [`noise`]: the MAD noise estimate shared by the QC and detect stages.
 //! - [`hash`]: content hashes for cache keys and manifests.
 //! - [`sampling`]: seeded subsets independent of visiting order.
+//! - [`runs`]: several buffers cut into the same runs for parallel tasks.
 //! - [`mod@stage_main`]: the command-line glue every Rust stage shares.
 //!
 //! Conventions, stated once: samples are 0-based frame indices into the
@@ -28,6 +29,7 @@ pub mod linalg;
 pub mod noise;
 pub mod recording;
 pub mod request;
+pub mod runs;
 pub mod sampling;
 pub mod stage_main;
 pub mod table;

@@ -28,7 +28,11 @@ pub fn median_in_place(values: &mut [f32]) -> f64 {
 /// several times cheaper than the total order (the median reference takes
 /// one per frame). Empty input gives NaN.
 pub fn median_of_finite(values: &mut [f32]) -> f64 {
-    median_by(values, |a, b| a.partial_cmp(b).unwrap_or(std::cmp::Ordering::Equal))
+    median_by(values, finite_order)
+}
+
+fn finite_order(a: &f32, b: &f32) -> std::cmp::Ordering {
+    a.partial_cmp(b).unwrap_or(std::cmp::Ordering::Equal)
 }
 
 fn median_by(values: &mut [f32], order: impl FnMut(&f32, &f32) -> std::cmp::Ordering) -> f64 {
@@ -36,13 +40,24 @@ fn median_by(values: &mut [f32], order: impl FnMut(&f32, &f32) -> std::cmp::Orde
     if n == 0 {
         return f64::NAN;
     }
-    let (lower, upper, _) = values.select_nth_unstable_by(n / 2, order);
+    value_of_rank(values, n / 2, n % 2 == 0, order)
+}
+
+/// The value of rank `rank` in `values` (reordering them), averaged with
+/// the one of rank `rank − 1` when `with_lower` (an even count's median).
+fn value_of_rank(
+    values: &mut [f32],
+    rank: usize,
+    with_lower: bool,
+    order: impl FnMut(&f32, &f32) -> std::cmp::Ordering,
+) -> f64 {
+    let (lower, upper, _) = values.select_nth_unstable_by(rank, order);
     let upper = *upper as f64;
-    if n % 2 == 1 {
-        upper
-    } else {
+    if with_lower {
         let lower_max = lower.iter().copied().fold(f32::NEG_INFINITY, f32::max) as f64;
         0.5 * (lower_max + upper)
+    } else {
+        upper
     }
 }
 
@@ -94,7 +109,7 @@ impl RunningMedian {
         let (below, above) =
             values.iter().fold((0u32, 0u32), |(b, a), &v| (b + u32::from(v < lo), a + u32::from(v > hi)));
         let (below, above) = (below as usize, above as usize);
-        let median = if below <= rank_low && rank_high < n - above {
+        if below <= rank_low && rank_high < n - above {
             let inside = n - below - above;
             self.scratch.resize(n, 0.0);
             let mut kept = 0;
@@ -104,28 +119,18 @@ impl RunningMedian {
                 kept += usize::from(v >= lo && v <= hi);
             }
             debug_assert_eq!(kept, inside);
-            let window = &mut self.scratch[..inside];
-            let order = |a: &f32, b: &f32| a.partial_cmp(b).unwrap_or(std::cmp::Ordering::Equal);
-            let (left, upper, _) = window.select_nth_unstable_by(rank_high - below, order);
-            let upper = *upper as f64;
-            let median = if rank_low == rank_high {
-                upper
-            } else {
-                // rank_low ≥ below, so the value of rank rank_low is in `left`.
-                0.5 * (left.iter().copied().fold(f32::NEG_INFINITY, f32::max) as f64 + upper)
-            };
             if inside > Self::WINDOW_TARGET {
                 self.half_width *= 0.9;
             }
-            median
+            // rank_low ≥ below: both middle values are inside the window.
+            value_of_rank(&mut self.scratch[..inside], rank_high - below, rank_low != rank_high, finite_order)
         } else {
             self.scratch.clear();
             self.scratch.extend_from_slice(values);
             let median = median_of_finite(&mut self.scratch);
             self.half_width = (2.0 * self.half_width).max(1.5 * (median as f32 - centre).abs());
             median
-        };
-        median
+        }
     }
 }
 

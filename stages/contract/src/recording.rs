@@ -302,7 +302,7 @@ impl Recording {
             })?;
         } else if self.dtype == Dtype::I16 && self.layout == Layout::TimeMajor {
             // The commonest raw format, and the filter stage's own output:
-            // one tight loop over the mapped bytes (same arithmetic as below).
+            // one tight loop over the mapped bytes.
             // In parallel over runs of samples: the page faults of the map and
             // the conversion are shared between the cores.
             use rayon::prelude::*;
@@ -311,7 +311,7 @@ impl Recording {
                 out.par_chunks_mut(SAMPLES_PER_TASK).zip(bytes.par_chunks(2 * SAMPLES_PER_TASK)).for_each(
                     |(out, bytes)| {
                         for (o, b) in out.iter_mut().zip(bytes.chunks_exact(2)) {
-                            *o = ((i16::from_le_bytes([b[0], b[1]]) as f64 - offset) * gain) as f32;
+                            *o = i16_microvolts(b, gain, offset);
                         }
                     },
                 )
@@ -351,11 +351,7 @@ impl Recording {
             return self.visit_time_major(start, end, |bytes| {
                 bytes.par_chunks(run_bytes).enumerate().for_each_init(Vec::new, |frames, (run, bytes)| {
                     frames.clear();
-                    frames.extend(
-                        bytes
-                            .chunks_exact(2)
-                            .map(|b| ((i16::from_le_bytes([b[0], b[1]]) as f64 - offset) * gain) as f32),
-                    );
+                    frames.extend(bytes.chunks_exact(2).map(|b| i16_microvolts(b, gain, offset)));
                     visit(run, frames);
                 })
             });
@@ -500,6 +496,13 @@ pub fn plan_chunks(n_frames: u64, chunk_frames: usize, margin_frames: usize) -> 
         core_start = core_end;
     }
     chunks
+}
+
+/// One stored little-endian i16 as µV: the same arithmetic as
+/// [`Dtype::decode`] followed by the offset and gain of [`Recording::read_frames`].
+#[inline(always)]
+fn i16_microvolts(bytes: &[u8], gain: f64, offset: f64) -> f32 {
+    ((i16::from_le_bytes([bytes[0], bytes[1]]) as f64 - offset) * gain) as f32
 }
 
 fn map_range(file: &File, offset: u64, len: usize) -> std::io::Result<memmap2::Mmap> {

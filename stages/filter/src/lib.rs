@@ -27,6 +27,7 @@ use params::{FilterParams, FilteredStorage, Reference, ValidFilterParams};
 use qc::{ChannelStatus, Welch};
 use rayon::prelude::*;
 use spikeyard_contract::recording::{to_channel_major, RecordingWriter, Storage};
+use spikeyard_contract::runs::group_runs;
 use spikeyard_contract::table::write_table;
 use spikeyard_contract::{
     noise, Chunk, ContractError, ProgressReporter, Recording, RecordingError, StageFailure, StageReport, StageRequest,
@@ -125,16 +126,10 @@ pub fn filter_chunk(
         // Frames into the blocks run by run, in parallel, straight from the
         // reader; the rows of each block are split into the same runs.
         const FRAMES_PER_RUN: usize = 256;
-        let mut runs: Vec<Vec<&mut [Lanes]>> = Vec::new();
         for rows in filtered.blocks.iter_mut() {
             rows.resize(before + n + after, [0.0; BLOCK_LANES]);
-            for (run, rows) in rows[before..before + n].chunks_mut(FRAMES_PER_RUN).enumerate() {
-                if runs.len() <= run {
-                    runs.push(Vec::new());
-                }
-                runs[run].push(rows);
-            }
         }
+        let runs = group_runs(filtered.blocks.iter_mut().map(|rows| &mut rows[before..before + n]), FRAMES_PER_RUN);
         // Each run's rows are taken by the one call that fills them.
         let runs: Vec<std::sync::Mutex<Vec<&mut [Lanes]>>> = runs.into_iter().map(std::sync::Mutex::new).collect();
         recording.visit_frame_runs(chunk.read_start, chunk.read_end, FRAMES_PER_RUN, |run, frames| {

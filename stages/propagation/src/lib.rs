@@ -39,6 +39,7 @@ use fit::Node;
 use params::PropagationParams;
 use rayon::prelude::*;
 use spikeyard_contract::events::{for_each_event_window, EventRecord};
+use spikeyard_contract::runs::group_runs;
 use spikeyard_contract::sampling::uniform;
 use spikeyard_contract::table::{column, read_table, write_table};
 use spikeyard_contract::{ContractError, Recording, StageFailure, StageReport, StageRequest};
@@ -94,15 +95,7 @@ pub fn footprints(
         // unit's sum, spike after spike in order (the same additions in the
         // same order whatever the thread count).
         const ROWS_PER_TASK: usize = 8;
-        let mut runs: Vec<Vec<&mut [f64]>> = Vec::new();
-        for sum in sums.iter_mut() {
-            for (task, rows) in sum.chunks_mut(ROWS_PER_TASK * n_channels).enumerate() {
-                if runs.len() <= task {
-                    runs.push(Vec::new());
-                }
-                runs[task].push(rows);
-            }
-        }
+        let runs = group_runs(sums.iter_mut().map(Vec::as_mut_slice), ROWS_PER_TASK * n_channels);
         runs.into_par_iter().enumerate().for_each(|(task, mut rows)| {
             for event in window.events {
                 let rows = &mut rows[spikes[event.index as usize].0];
