@@ -219,10 +219,9 @@ fn measure_templates(
         sums.par_iter_mut().enumerate().for_each(|(unit, rows)| {
             for event in window.events.iter().filter(|e| unit_of(e) == unit) {
                 for k in 0..length {
-                    let frame =
-                        window.row(event.sample as i64 - params.template_before_frames as i64 + k as i64, n_channels);
+                    let frame = event.sample as i64 - params.template_before_frames as i64 + k as i64;
                     for (row, &channel) in rows.iter_mut().zip(&unit_channels[unit]) {
-                        row[k] += frame[channel] as f64;
+                        row[k] += window.value(frame, channel, n_channels) as f64;
                     }
                 }
             }

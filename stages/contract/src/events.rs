@@ -4,7 +4,7 @@
 //! spikes, so memory stays bounded by one chunk and one batch of events.
 
 use crate::error::ContractError;
-use crate::recording::Recording;
+use crate::recording::{Frames, Recording};
 use crate::table::column;
 use arrow_array::{Float32Array, Int32Array, Int64Array};
 use parquet::arrow::arrow_reader::{ParquetRecordBatchReader, ParquetRecordBatchReaderBuilder};
@@ -84,25 +84,30 @@ impl Iterator for EventStream {
 /// Frames of one chunk with the events whose sample lies in its core.
 pub struct EventWindow<'a> {
     /// Time-major µV frames starting at `first_frame`.
-    pub frames: &'a [f32],
+    pub frames: Frames<'a>,
     pub first_frame: u64,
     pub n_frames: usize,
     pub events: &'a [EventRecord],
 }
 
 impl EventWindow<'_> {
-    /// Every channel at absolute `frame`, clamped to the frames held.
+    /// Position of absolute `frame` among the frames held, clamped to them.
     #[inline]
-    pub fn row(&self, frame: i64, n_channels: usize) -> &[f32] {
-        let local = (frame - self.first_frame as i64).clamp(0, self.n_frames as i64 - 1) as usize;
-        &self.frames[local * n_channels..(local + 1) * n_channels]
+    fn local(&self, frame: i64) -> usize {
+        (frame - self.first_frame as i64).clamp(0, self.n_frames as i64 - 1) as usize
     }
 
     /// Value at absolute `frame` on `channel`, clamped to the frames held.
     #[inline]
     pub fn value(&self, frame: i64, channel: usize, n_channels: usize) -> f32 {
-        let local = (frame - self.first_frame as i64).clamp(0, self.n_frames as i64 - 1) as usize;
-        self.frames[local * n_channels + channel]
+        self.frames.get(self.local(frame) * n_channels + channel)
+    }
+
+    /// Add every channel at absolute `frame` (clamped to the frames held)
+    /// to `sums` (one per channel).
+    #[inline]
+    pub fn add_row(&self, frame: i64, sums: &mut [f64]) {
+        self.frames.add_to(self.local(frame) * sums.len(), sums);
     }
 }
 
@@ -123,7 +128,7 @@ pub fn for_each_event_window<E: From<ContractError>>(
     mut visit: impl FnMut(&EventWindow) -> Result<(), E>,
 ) -> Result<(), E> {
     let mut events = events.into_iter();
-    let mut frames = Vec::new();
+    let mut scratch = Vec::new();
     let mut pending: Option<EventRecord> = events.next().transpose()?;
     let mut batch = Vec::new();
     for chunk in recording.chunks(chunk_frames, margin_frames) {
@@ -152,13 +157,17 @@ pub fn for_each_event_window<E: From<ContractError>>(
         if batch.is_empty() {
             continue;
         }
-        recording.read_frames(chunk.read_start, chunk.read_end, &mut frames).map_err(ContractError::from)?;
-        visit(&EventWindow {
-            frames: &frames,
-            first_frame: chunk.read_start,
-            n_frames: chunk.read_frames(),
-            events: &batch,
-        })?;
+        // Only the values the callback looks at are converted (for i16 files).
+        recording
+            .visit_frames(chunk.read_start, chunk.read_end, &mut scratch, |frames| {
+                visit(&EventWindow {
+                    frames,
+                    first_frame: chunk.read_start,
+                    n_frames: chunk.read_frames(),
+                    events: &batch,
+                })
+            })
+            .map_err(ContractError::from)??;
     }
     if let Some(event) = pending {
         return Err(ContractError::Format {

@@ -326,6 +326,28 @@ impl Recording {
         Ok(())
     }
 
+    /// Frames `start..end` for a caller that looks at a few of their values
+    /// (snippets around events): a time-major i16 file is mapped and only the
+    /// values looked at are converted, equal to [`Recording::read_frames`]'s;
+    /// other formats are read whole into `scratch` first.
+    ///
+    /// # Errors
+    /// As [`Recording::read_frames`].
+    pub fn visit_frames<R>(
+        &self,
+        start: u64,
+        end: u64,
+        scratch: &mut Vec<f32>,
+        visit: impl FnOnce(Frames) -> R,
+    ) -> Result<R, RecordingError> {
+        if self.dtype == Dtype::I16 && self.layout == Layout::TimeMajor {
+            let (gain, offset) = (self.microvolts_per_unit, self.offset);
+            return self.visit_time_major(start, end, |bytes| visit(Frames::StoredI16 { bytes, gain, offset }));
+        }
+        self.read_frames(start, end, scratch)?;
+        Ok(visit(Frames::Microvolts(scratch)))
+    }
+
     /// Frames `start..end` in runs of `run_frames`, in parallel: run r (frames
     /// `start + r·run_frames ..`, the last one shorter) is handed to
     /// `visit(r, frames)` as µV, time-major, the same values
@@ -413,18 +435,17 @@ impl Recording {
 
     /// Call `visit` with the stored bytes of frames `start..end` of a
     /// time-major file (not at all for an empty range).
-    fn visit_time_major(&self, start: u64, end: u64, visit: impl FnOnce(&[u8])) -> Result<(), RecordingError> {
+    fn visit_time_major<R>(&self, start: u64, end: u64, visit: impl FnOnce(&[u8]) -> R) -> Result<R, RecordingError> {
         let io = |source: std::io::Error| RecordingError::Io { path: self.data_path.clone(), source };
         self.check_range(start, end)?;
         let n_frames = (end - start) as usize;
         if n_frames == 0 {
-            return Ok(());
+            return Ok(visit(&[]));
         }
         let file = File::open(&self.data_path).map_err(io)?;
         let frame_bytes = self.n_channels * self.dtype.bytes();
         let map = map_range(&file, start * frame_bytes as u64, n_frames * frame_bytes).map_err(io)?;
-        visit(&map);
-        Ok(())
+        Ok(visit(&map))
     }
 
     /// Call `put(index, bytes)` for every stored value of frames
@@ -496,6 +517,43 @@ pub fn plan_chunks(n_frames: u64, chunk_frames: usize, margin_frames: usize) -> 
         core_start = core_end;
     }
     chunks
+}
+
+/// Time-major frames as [`Recording::visit_frames`] hands them out: in µV
+/// already, or the stored i16 values, converted where they are looked at.
+#[derive(Debug, Clone, Copy)]
+pub enum Frames<'a> {
+    Microvolts(&'a [f32]),
+    StoredI16 { bytes: &'a [u8], gain: f64, offset: f64 },
+}
+
+impl Frames<'_> {
+    /// The value at time-major position `index`, µV.
+    #[inline]
+    pub fn get(&self, index: usize) -> f32 {
+        match *self {
+            Frames::Microvolts(values) => values[index],
+            Frames::StoredI16 { bytes, gain, offset } => i16_microvolts(&bytes[2 * index..2 * index + 2], gain, offset),
+        }
+    }
+
+    /// Add the values at positions `start..start + sums.len()` to `sums`.
+    #[inline]
+    pub fn add_to(&self, start: usize, sums: &mut [f64]) {
+        let end = start + sums.len();
+        match *self {
+            Frames::Microvolts(values) => {
+                for (s, v) in sums.iter_mut().zip(&values[start..end]) {
+                    *s += *v as f64;
+                }
+            }
+            Frames::StoredI16 { bytes, gain, offset } => {
+                for (s, b) in sums.iter_mut().zip(bytes[2 * start..2 * end].chunks_exact(2)) {
+                    *s += i16_microvolts(b, gain, offset) as f64;
+                }
+            }
+        }
+    }
 }
 
 /// One stored little-endian i16 as µV: the same arithmetic as
@@ -958,6 +1016,16 @@ mod layout_tests {
                     assert_eq!(runs.len(), 2usize.div_ceil(run_frames), "{dtype} {layout}");
                     assert_eq!(joined, expected, "{dtype} {layout}, runs of {run_frames}");
                 }
+                // Value by value (converted where looked at for i16), and rows added.
+                let (values, sums) = recording
+                    .visit_frames(1, 2, &mut Vec::new(), |f| {
+                        let mut sums = vec![10.0f64; 3];
+                        f.add_to(0, &mut sums);
+                        ((0..3).map(|i| f.get(i)).collect::<Vec<f32>>(), sums)
+                    })
+                    .unwrap();
+                assert_eq!(values, expected[3..].to_vec(), "{dtype} {layout}");
+                assert_eq!(sums, [12.0, 12.5, 13.0], "{dtype} {layout}");
             }
         }
     }

@@ -81,6 +81,7 @@ pub fn centre_of_mass(electrodes: &[Electrode], channels: &[(usize, f64)], troug
 #[cfg(test)]
 mod tests {
     use super::*;
+    use spikeyard_contract::recording::Frames;
 
     #[test]
     fn parabola_finds_the_true_extremum_of_a_sampled_parabola() {
@@ -99,7 +100,7 @@ mod tests {
                 [t * t * 0.01, 5.0]
             })
             .collect();
-        let window = EventWindow { frames: &frames, first_frame: 100, n_frames: 40, events: &[] };
+        let window = EventWindow { frames: Frames::Microvolts(&frames), first_frame: 100, n_frames: 40, events: &[] };
         let mut out = [0.0; 5];
         cut_snippet(&window, n_channels, 0, 120.0, 2, &mut out);
         assert_eq!(out.to_vec(), (18..23).map(|k| frames[k * n_channels] as f64).collect::<Vec<_>>());

@@ -101,9 +101,7 @@ pub fn footprints(
                 let rows = &mut rows[spikes[event.index as usize].0];
                 for (j, row) in rows.chunks_exact_mut(n_channels).enumerate() {
                     let frame = event.sample as i64 - before as i64 + (task * ROWS_PER_TASK + j) as i64;
-                    for (s, v) in row.iter_mut().zip(window.row(frame, n_channels)) {
-                        *s += *v as f64;
-                    }
+                    window.add_row(frame, row);
                 }
             }
         });
