@@ -528,6 +528,18 @@ pub enum Frames<'a> {
 }
 
 impl Frames<'_> {
+    /// How many values (frames × channels).
+    pub fn len(&self) -> usize {
+        match *self {
+            Frames::Microvolts(values) => values.len(),
+            Frames::StoredI16 { bytes, .. } => bytes.len() / 2,
+        }
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.len() == 0
+    }
+
     /// The value at time-major position `index`, µV.
     #[inline]
     pub fn get(&self, index: usize) -> f32 {
@@ -554,6 +566,25 @@ impl Frames<'_> {
             }
         }
     }
+}
+
+/// The smallest stored i16 value whose µV (as [`Recording::read_frames`]
+/// converts it with this gain and offset) satisfies `holds`, which must be
+/// false below some value and true from it on (a comparison with a fixed
+/// µV level, for a positive gain); 32768 when no i16 satisfies it. Lets a
+/// comparison in µV run on the stored values.
+pub fn i16_first_where(gain: f64, offset: f64, holds: impl Fn(f32) -> bool) -> i32 {
+    let microvolts = |stored: i32| i16_microvolts(&(stored as i16).to_le_bytes(), gain, offset);
+    let (mut low, mut high) = (i32::from(i16::MIN), i32::from(i16::MAX) + 1);
+    while low < high {
+        let middle = low + (high - low) / 2;
+        if holds(microvolts(middle)) {
+            high = middle;
+        } else {
+            low = middle + 1;
+        }
+    }
+    low
 }
 
 /// One stored little-endian i16 as µV: the same arithmetic as

@@ -2,6 +2,7 @@
 //! one spike seen on several electrodes into one event.
 
 use crate::params::Polarity;
+use spikeyard_contract::recording::{i16_first_where, Frames};
 use std::collections::VecDeque;
 
 /// A detected event.
@@ -31,10 +32,13 @@ impl Event {
 /// are appended in order of crossing.
 ///
 /// The scan runs along frames, across channels, so no transpose is needed
-/// and the comparisons of one frame run side by side.
+/// and the comparisons of one frame run side by side. Stored i16 frames are
+/// compared as stored, against the thresholds moved to stored units (the
+/// same answers: the conversion to µV is monotone), so only the values
+/// around a crossing are ever converted.
 #[allow(clippy::too_many_arguments)]
 pub fn find_crossings(
-    frames: &[f32],
+    frames: Frames,
     n_channels: usize,
     first_frame: u64,
     core: std::ops::Range<usize>,
@@ -45,44 +49,44 @@ pub fn find_crossings(
     last_crossing: &mut [Option<u64>],
     out: &mut Vec<Event>,
 ) {
-    use rayon::prelude::*;
-    const FRAMES_PER_TASK: usize = 4096;
     let n_frames = frames.len() / n_channels.max(1);
     let (negative, positive) = (
         matches!(polarity, Polarity::Negative | Polarity::Both),
         matches!(polarity, Polarity::Positive | Polarity::Both),
     );
-    let (start, end) = (core.start.max(1), core.end.min(n_frames));
-    // Crossings (frame, channel, sign) in parallel over runs of frames, in
-    // frame order; then, in that order, the dead time and the extremum.
-    let crossings: Vec<Vec<(usize, usize, f32)>> = (start..end.max(start))
-        .step_by(FRAMES_PER_TASK)
-        .collect::<Vec<_>>()
-        .into_par_iter()
-        .map(|from| {
-            let mut found = Vec::new();
-            for k in from..(from + FRAMES_PER_TASK).min(end) {
-                let before = &frames[(k - 1) * n_channels..k * n_channels];
-                let now = &frames[k * n_channels..(k + 1) * n_channels];
-                // Most frames cross nowhere: a branch-free test over the
-                // whole frame (vectorized) first, the search only on a hit.
-                let crosses = |((&b, &x), &t): ((&f32, &f32), &f32)| {
-                    (negative & (b >= -t) & (x < -t)) | (positive & (b <= t) & (x > t))
-                };
-                if !before.iter().zip(now).zip(thresholds_uv).fold(false, |any, v| any | crosses(v)) {
-                    continue;
+    let scan = Scan { start: core.start.max(1), end: core.end.min(n_frames), negative, positive };
+    let crossings = match frames {
+        Frames::StoredI16 { bytes, gain, offset } if gain > 0.0 => {
+            // "Below −t" is "stored below the first value at or above −t";
+            // "above t" is "stored at or above the first value above t".
+            let (low, high) = thresholds_uv
+                .iter()
+                .map(|&t| (i16_first_where(gain, offset, |v| v >= -t), i16_first_where(gain, offset, |v| v > t)))
+                .unzip();
+            scan.run(&Boundaries { low, high }, |k| {
+                bytes[2 * k * n_channels..2 * (k + 1) * n_channels]
+                    .chunks_exact(2)
+                    .map(|b| i32::from(i16::from_le_bytes([b[0], b[1]])))
+            })
+        }
+        Frames::StoredI16 { .. } | Frames::Microvolts(_) => {
+            // Stored values with a gain that is not positive: converted whole.
+            let converted: Vec<f32>;
+            let values = match frames {
+                Frames::Microvolts(values) => values,
+                Frames::StoredI16 { .. } => {
+                    converted = (0..frames.len()).map(|i| frames.get(i)).collect();
+                    &converted
                 }
-                for (c, ((&b, &x), &t)) in before.iter().zip(now).zip(thresholds_uv).enumerate() {
-                    if negative & (b >= -t) & (x < -t) {
-                        found.push((k, c, -1.0));
-                    } else if positive & (b <= t) & (x > t) {
-                        found.push((k, c, 1.0));
-                    }
-                }
-            }
-            found
-        })
-        .collect();
+            };
+            // "Above t" is "at or above the next f32 after t".
+            let boundaries = Boundaries {
+                low: thresholds_uv.iter().map(|t| -t).collect(),
+                high: thresholds_uv.iter().map(|&t| next_up(t)).collect(),
+            };
+            scan.run(&boundaries, |k| values[k * n_channels..(k + 1) * n_channels].iter().copied())
+        }
+    };
     for (k, c, sign) in crossings.into_iter().flatten() {
         let frame = first_frame + k as u64;
         if last_crossing[c].is_some_and(|last| frame < last + dead_frames) {
@@ -90,10 +94,81 @@ pub fn find_crossings(
         }
         last_crossing[c] = Some(frame);
         let stop = (k + peak_frames).min(n_frames);
-        let (peak, value) = (k..stop)
-            .map(|j| (j, frames[j * n_channels + c]))
-            .fold((k, frames[k * n_channels + c]), |best, (j, v)| if sign * v > sign * best.1 { (j, v) } else { best });
+        let value = |j: usize| frames.get(j * n_channels + c);
+        let (peak, value) =
+            (k..stop)
+                .map(|j| (j, value(j)))
+                .fold((k, value(k)), |best, (j, v)| if sign * v > sign * best.1 { (j, v) } else { best });
         out.push(Event { sample: first_frame + peak as u64, channel: c as u32, amplitude_uv: value });
+    }
+}
+
+/// The smallest f32 above `t` (`t` itself when infinite or NaN).
+fn next_up(t: f32) -> f32 {
+    match t {
+        t if !t.is_finite() => t,
+        0.0 => f32::from_bits(1),
+        t if t > 0.0 => f32::from_bits(t.to_bits() + 1),
+        t => f32::from_bits(t.to_bits() - 1),
+    }
+}
+
+/// Per channel: a value v is below when v < low, above when v ≥ high.
+struct Boundaries<T> {
+    low: Vec<T>,
+    high: Vec<T>,
+}
+
+/// Which frames and signs a scan for crossings covers.
+struct Scan {
+    start: usize,
+    end: usize,
+    negative: bool,
+    positive: bool,
+}
+
+impl Scan {
+    /// Crossings (frame, channel, sign) in parallel over runs of frames, in
+    /// frame order; `frame(k)` gives frame k's values.
+    fn run<T, I>(&self, boundaries: &Boundaries<T>, frame: impl Fn(usize) -> I + Sync) -> Vec<Vec<(usize, usize, f32)>>
+    where
+        T: Copy + PartialOrd + Sync,
+        I: Iterator<Item = T>,
+    {
+        use rayon::prelude::*;
+        const FRAMES_PER_TASK: usize = 4096;
+        let (negative, positive) = (self.negative, self.positive);
+        let bounds = || boundaries.low.iter().zip(&boundaries.high);
+        let crosses = |b: T, x: T, low: T, high: T| -> (bool, bool) {
+            (negative & (b >= low) & (x < low), positive & (b < high) & (x >= high))
+        };
+        (self.start..self.end.max(self.start))
+            .step_by(FRAMES_PER_TASK)
+            .collect::<Vec<_>>()
+            .into_par_iter()
+            .map(|from| {
+                let mut found = Vec::new();
+                for k in from..(from + FRAMES_PER_TASK).min(self.end) {
+                    // Most frames cross nowhere: a branch-free test over the
+                    // whole frame (vectorized) first, the search only on a hit.
+                    let any = frame(k - 1).zip(frame(k)).zip(bounds()).fold(false, |any, ((b, x), (&low, &high))| {
+                        let (down, up) = crosses(b, x, low, high);
+                        any | down | up
+                    });
+                    if !any {
+                        continue;
+                    }
+                    for (c, ((b, x), (&low, &high))) in frame(k - 1).zip(frame(k)).zip(bounds()).enumerate() {
+                        match crosses(b, x, low, high) {
+                            (true, _) => found.push((k, c, -1.0)),
+                            (false, true) => found.push((k, c, 1.0)),
+                            _ => {}
+                        }
+                    }
+                }
+                found
+            })
+            .collect()
     }
 }
 
@@ -175,7 +250,7 @@ mod tests {
     fn scan(x: &[f32], polarity: Polarity, dead: u64) -> Vec<(u64, f32)> {
         let mut out = vec![];
         let mut last = [None];
-        find_crossings(x, 1, 100, 0..x.len(), &[5.0], polarity, 3, dead, &mut last, &mut out);
+        find_crossings(Frames::Microvolts(x), 1, 100, 0..x.len(), &[5.0], polarity, 3, dead, &mut last, &mut out);
         out.iter().map(|e| (e.sample, e.amplitude_uv)).collect()
     }
 
@@ -186,7 +261,18 @@ mod tests {
         let frames = [0.0, 0.0, 0.0, -6.0, 0.0, -9.0, -7.0, -8.0, -9.0, 0.0, -6.0, 0.0];
         let mut out = vec![];
         let mut last = [None; 3];
-        find_crossings(&frames, 3, 0, 0..4, &[5.0, 5.0, f32::INFINITY], Polarity::Negative, 2, 0, &mut last, &mut out);
+        find_crossings(
+            Frames::Microvolts(&frames),
+            3,
+            0,
+            0..4,
+            &[5.0, 5.0, f32::INFINITY],
+            Polarity::Negative,
+            2,
+            0,
+            &mut last,
+            &mut out,
+        );
         let found: Vec<(u64, u32, f32)> = out.iter().map(|e| (e.sample, e.channel, e.amplitude_uv)).collect();
         assert_eq!(found, vec![(2, 0, -7.0), (2, 1, -8.0)]);
         assert_eq!(last, [Some(1), Some(2), None]);
@@ -206,6 +292,42 @@ mod tests {
         assert_eq!(scan(&x, Polarity::Positive, 0), vec![(101, 6.0)]);
         assert_eq!(scan(&x, Polarity::Negative, 0), vec![(103, -6.0)]);
         assert_eq!(scan(&x, Polarity::Both, 0).len(), 2);
+        // A value exactly at ±threshold (5) is not beyond it; the next f32 is.
+        let just = f32::from_bits(5.0f32.to_bits() + 1);
+        let x = [0.0, 5.0, 0.0, -5.0, 0.0, just, 0.0, -just, 0.0];
+        assert_eq!(scan(&x, Polarity::Both, 0), vec![(105, just), (107, -just)]);
+    }
+
+    // Stored i16 frames are compared in stored units: the same events as
+    // on the converted µV, also for values exactly at a threshold, for
+    // both signs, an off channel and a gain and offset that do not divide
+    // the thresholds evenly.
+    #[test]
+    fn stored_i16_frames_give_the_events_of_their_microvolts() {
+        let (gain, offset, n_channels) = (0.195_f64, 3.0_f64, 4);
+        let microvolts = |s: i16| ((s as f64 - offset) * gain) as f32;
+        let thresholds = [microvolts(-47), microvolts(52), 9.8, f32::INFINITY];
+        let mut state = 7u64;
+        let stored: Vec<i16> = (0..4000 * n_channels)
+            .map(|i| {
+                state = state.wrapping_mul(6364136223846793005).wrapping_add(1442695040888963407);
+                // Values around the thresholds, each one hit exactly now and then.
+                [-47, -46, -48, 52, 53, 51, 0, 55, -60][(state >> 33) as usize % 9] + (i % 3) as i16 - 1
+            })
+            .collect();
+        let bytes: Vec<u8> = stored.iter().flat_map(|v| v.to_le_bytes()).collect();
+        let values: Vec<f32> = stored.iter().map(|&v| microvolts(v)).collect();
+        for polarity in [Polarity::Negative, Polarity::Positive, Polarity::Both] {
+            let run = |frames: Frames| {
+                let (mut last, mut out) = (vec![None; n_channels], Vec::new());
+                find_crossings(frames, n_channels, 0, 0..4000, &thresholds, polarity, 3, 2, &mut last, &mut out);
+                out
+            };
+            let expected = run(Frames::Microvolts(&values));
+            assert!(expected.len() > 100, "{polarity:?}: {}", expected.len());
+            assert!(expected.iter().all(|e| e.channel != 3));
+            assert_eq!(run(Frames::StoredI16 { bytes: &bytes, gain, offset }), expected, "{polarity:?}");
+        }
     }
 
     fn event(sample: u64, channel: u32, amplitude_uv: f32) -> Event {

@@ -141,22 +141,23 @@ pub fn detect<E: From<RecordingError>>(
     let mut found = Vec::new();
     // One frame before the core (for the first comparison) and the peak search after it.
     for chunk in recording.chunks(params.chunk_frames, params.peak_frames + 1) {
-        recording.read_frames(chunk.read_start, chunk.read_end, &mut frames)?;
         let core_offset = (chunk.core_start - chunk.read_start) as usize;
         let core = core_offset..core_offset + chunk.core_frames();
         found.clear();
-        kernel::find_crossings(
-            &frames,
-            n_channels,
-            chunk.read_start,
-            core,
-            &thresholds,
-            params.polarity,
-            params.peak_frames,
-            params.dead_frames,
-            &mut last_crossing,
-            &mut found,
-        );
+        recording.visit_frames(chunk.read_start, chunk.read_end, &mut frames, |frames| {
+            kernel::find_crossings(
+                frames,
+                n_channels,
+                chunk.read_start,
+                core,
+                &thresholds,
+                params.polarity,
+                params.peak_frames,
+                params.dead_frames,
+                &mut last_crossing,
+                &mut found,
+            )
+        })?;
         merger.add(found.iter().copied());
         kept.clear();
         let is_last = chunk.core_end == recording.n_frames;
