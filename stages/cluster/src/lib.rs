@@ -138,6 +138,7 @@ pub fn fit_groups(fit_rows: &[Vec<Vec<f32>>], params: &ValidClusterParams, seed:
                 max_units: params.max_units_per_channel,
                 min_points_per_unit: params.min_events_per_unit,
                 runs: params.runs,
+                bic_patience: params.bic_patience,
                 dbscan_eps: params.dbscan_eps,
                 seed: seed ^ (channel as u64 + 1).wrapping_mul(0xA076_1D64_78BD_642F),
             };

@@ -196,19 +196,34 @@ pub enum Method {
     Dbscan,
 }
 
-/// Try k = 1..=max_k with `fit` and keep the lowest BIC (ties to the
-/// smaller k); each k gets at least `min_points_per_unit` rows per unit.
+/// Try k = 1, 2, ... up to `max_k` with `fit` and keep the lowest BIC (ties
+/// to the smaller k); each k gets at least `min_points_per_unit` rows per
+/// unit. With `patience` > 0 the sweep stops once that many k in a row have
+/// not lowered the BIC (their fits cost the most and, past the optimum,
+/// the penalty grows with every unit); 0 tries every k.
 pub fn select_by_bic(
     n_rows: usize,
     max_k: usize,
     min_points_per_unit: usize,
+    patience: usize,
     fit: impl Fn(usize) -> Option<Mixture>,
 ) -> Option<Mixture> {
     let largest = max_k.min(n_rows / min_points_per_unit.max(1)).max(1);
-    (1..=largest).filter_map(fit).fold(None, |best: Option<Mixture>, m| match best {
-        Some(b) if b.bic <= m.bic => Some(b),
-        _ => Some(m),
-    })
+    let mut best: Option<Mixture> = None;
+    let mut not_better = 0;
+    for k in 1..=largest {
+        let Some(mixture) = fit(k) else { continue };
+        if best.as_ref().is_some_and(|b| b.bic <= mixture.bic) {
+            not_better += 1;
+            if not_better == patience {
+                break;
+            }
+        } else {
+            best = Some(mixture);
+            not_better = 0;
+        }
+    }
+    best
 }
 
 /// How one neighbourhood is fitted.
@@ -218,6 +233,8 @@ pub struct GroupFit {
     pub max_units: usize,
     pub min_points_per_unit: usize,
     pub runs: u64,
+    /// See [`select_by_bic`].
+    pub bic_patience: usize,
     pub dbscan_eps: f64,
     pub seed: u64,
 }
@@ -226,10 +243,10 @@ pub struct GroupFit {
 pub fn fit_group(rows: &[Vec<f64>], d: usize, fit: &GroupFit) -> Option<Mixture> {
     let seed = |k: usize| fit.seed.wrapping_add(k as u64);
     match fit.method {
-        Method::Gmm => select_by_bic(rows.len(), fit.max_units, fit.min_points_per_unit, |k| {
+        Method::Gmm => select_by_bic(rows.len(), fit.max_units, fit.min_points_per_unit, fit.bic_patience, |k| {
             fit_gmm(rows, d, k, fit.runs, seed(k))
         }),
-        Method::Kmeans => select_by_bic(rows.len(), fit.max_units, fit.min_points_per_unit, |k| {
+        Method::Kmeans => select_by_bic(rows.len(), fit.max_units, fit.min_points_per_unit, fit.bic_patience, |k| {
             fit_kmeans(rows, d, k, fit.runs, seed(k))
         }),
         Method::Dbscan => fit_dbscan(rows, d, fit.dbscan_eps, fit.min_points_per_unit),
@@ -251,7 +268,15 @@ mod tests {
             }
         }
         for method in [Method::Gmm, Method::Kmeans, Method::Dbscan] {
-            let fit = GroupFit { method, max_units: 6, min_points_per_unit: 10, runs: 3, dbscan_eps: 1.0, seed: 1 };
+            let fit = GroupFit {
+                method,
+                max_units: 6,
+                min_points_per_unit: 10,
+                runs: 3,
+                bic_patience: 2,
+                dbscan_eps: 1.0,
+                seed: 1,
+            };
             let model = fit_group(&rows, 2, &fit).unwrap();
             assert_eq!(model.components.len(), 3, "{method:?}");
             let labels: Vec<usize> = rows.iter().map(|r| model.predict(r)).collect();
@@ -260,5 +285,22 @@ mod tests {
                 assert!(labels[blob * 200..(blob + 1) * 200].iter().all(|&l| l == first));
             }
         }
+    }
+
+    // The sweep keeps the lowest BIC; patience stops it after that many k
+    // in a row without a lower one (BIC by k: 10, 12, 13, 5).
+    #[test]
+    fn bic_sweep_stops_after_patience_runs_out() {
+        let bics = [10.0, 12.0, 13.0, 5.0];
+        let tried = std::cell::RefCell::new(Vec::new());
+        let fit = |k: usize| {
+            tried.borrow_mut().push(k);
+            Some(Mixture { components: Vec::new(), bic: bics[k - 1] })
+        };
+        assert_eq!(select_by_bic(100, 4, 1, 0, fit).unwrap().bic, 5.0);
+        assert_eq!(tried.take(), vec![1, 2, 3, 4]);
+        assert_eq!(select_by_bic(100, 4, 1, 2, fit).unwrap().bic, 10.0);
+        assert_eq!(tried.take(), vec![1, 2, 3]);
+        assert_eq!(select_by_bic(100, 4, 1, 3, fit).unwrap().bic, 5.0);
     }
 }

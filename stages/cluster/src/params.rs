@@ -19,6 +19,9 @@ pub struct ClusterParams {
     pub fit_events_per_channel: usize,
     /// Restarts of each fit; the best is kept. Default 3.
     pub runs: u64,
+    /// Larger unit counts are tried until this many in a row fail to lower
+    /// the BIC; 0 tries every count up to max_units_per_channel. Default 2.
+    pub bic_patience: usize,
     /// Units closer than this (template positions, µm), and ... Default 40.
     pub merge_distance_um: f64,
     /// ... whose mean waveforms on shared electrodes correlate at least this much are one unit. Default 0.9.
@@ -47,6 +50,7 @@ impl Default for ClusterParams {
             min_events_per_unit: 20,
             fit_events_per_channel: 4000,
             runs: 3,
+            bic_patience: 2,
             merge_distance_um: 40.0,
             merge_min_correlation: 0.9,
             duplicate_window_ms: 0.3,
@@ -69,6 +73,7 @@ pub struct ValidClusterParams {
     pub min_events_per_unit: usize,
     pub fit_events_per_channel: usize,
     pub runs: u64,
+    pub bic_patience: usize,
     pub merge_distance_um: f64,
     pub merge_min_correlation: f64,
     pub duplicate_frames: u64,
@@ -134,6 +139,7 @@ impl ClusterParams {
             min_events_per_unit: self.min_events_per_unit,
             fit_events_per_channel: self.fit_events_per_channel,
             runs: self.runs,
+            bic_patience: self.bic_patience,
             merge_distance_um: self.merge_distance_um,
             merge_min_correlation: self.merge_min_correlation,
             duplicate_frames,

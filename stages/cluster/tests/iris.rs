@@ -42,8 +42,15 @@ fn gmm_bic_over_k_matches_scikit_learn_and_selects_two() {
         let model = fit_gmm(&rows, 4, k, 10, 0).unwrap();
         assert!(model.bic > two.bic, "k={k}: {}", model.bic);
     }
-    let fit =
-        GroupFit { method: Method::Gmm, max_units: 5, min_points_per_unit: 10, runs: 10, dbscan_eps: 0.0, seed: 0 };
+    let fit = GroupFit {
+        method: Method::Gmm,
+        max_units: 5,
+        min_points_per_unit: 10,
+        runs: 10,
+        bic_patience: 0,
+        dbscan_eps: 0.0,
+        seed: 0,
+    };
     let best = fit_group(&rows, 4, &fit).unwrap();
     assert_eq!(best.components.len(), 2);
 }
