@@ -352,9 +352,9 @@ impl Recording {
     /// `start + r·run_frames ..`, the last one shorter) is handed to
     /// `visit(r, frames)` as µV, time-major, the same values
     /// [`Recording::read_frames`] gives. For time-major i16 files each run is
-    /// converted straight from the mapped file into a small per-thread
-    /// buffer, so a caller that rearranges the frames never sees the whole
-    /// range in f32; other formats are read whole first.
+    /// read and converted in a small per-thread buffer, so a caller that
+    /// rearranges the frames never sees the whole range in f32; other
+    /// formats are read whole first.
     ///
     /// # Errors
     /// As [`Recording::read_frames`].
@@ -368,15 +368,30 @@ impl Recording {
         use rayon::prelude::*;
         let run_frames = run_frames.max(1);
         if self.dtype == Dtype::I16 && self.layout == Layout::TimeMajor {
+            // Each run is read (pread) into a buffer the thread reuses: on a
+            // virtual machine this is steadier and cheaper than first touches
+            // of a fresh map of gigabytes (filter stage on a 120 s, 384-channel
+            // file: 6.3 s every time against 6.5-7.5 s through a map).
+            use std::os::unix::fs::FileExt;
+            let io = |source: std::io::Error| RecordingError::Io { path: self.data_path.clone(), source };
+            self.check_range(start, end)?;
             let (gain, offset) = (self.microvolts_per_unit, self.offset);
-            let run_bytes = run_frames * self.n_channels * 2;
-            return self.visit_time_major(start, end, |bytes| {
-                bytes.par_chunks(run_bytes).enumerate().for_each_init(Vec::new, |frames, (run, bytes)| {
+            let frame_bytes = self.n_channels * 2;
+            let file = File::open(&self.data_path).map_err(io)?;
+            let n_runs = ((end - start) as usize).div_ceil(run_frames);
+            return (0..n_runs).into_par_iter().try_for_each_init(
+                || (Vec::new(), Vec::new()),
+                |(bytes, frames): &mut (Vec<u8>, Vec<f32>), run| {
+                    let first = start + (run * run_frames) as u64;
+                    let last = (first + run_frames as u64).min(end);
+                    bytes.resize((last - first) as usize * frame_bytes, 0);
+                    file.read_exact_at(bytes, first * frame_bytes as u64).map_err(io)?;
                     frames.clear();
                     frames.extend(bytes.chunks_exact(2).map(|b| i16_microvolts(b, gain, offset)));
                     visit(run, frames);
-                })
-            });
+                    Ok(())
+                },
+            );
         }
         let mut frames = Vec::new();
         self.read_frames(start, end, &mut frames)?;
