@@ -828,17 +828,20 @@ impl SampleEncoder {
             }
             Storage::I16 { microvolts_per_unit } => {
                 let scale = (1.0 / microvolts_per_unit) as f32;
-                // Adding and subtracting 1.5·2²³ rounds an f32 of magnitude
-                // below 2²² to the nearest integer (ties to even) without a
-                // libm call.
+                // Adding 1.5·2²³ rounds an f32 of magnitude below 2²² to the
+                // nearest integer (ties to even), which then sits in the low
+                // bits of the sum: integer steps only, no float-to-int cast
+                // (whose saturating rule keeps the loop from vectorizing).
                 const ROUNDER: f32 = 12_582_912.0;
+                let rounder_bits = ROUNDER.to_bits() as i32;
                 let encode = |samples: &[f32], out: &mut [u8]| -> u32 {
                     let mut clipped = 0;
                     for (v, o) in samples.iter().zip(out.chunks_exact_mut(2)) {
                         let units = v * scale;
                         clipped += u32::from(!(-32767.0..=32767.0).contains(&units));
-                        let rounded = (units.clamp(-32767.0, 32767.0) + ROUNDER) - ROUNDER;
-                        o.copy_from_slice(&(rounded as i16).to_le_bytes());
+                        let units = if units.is_nan() { 0.0 } else { units.clamp(-32767.0, 32767.0) };
+                        let rounded = ((units + ROUNDER).to_bits() as i32 - rounder_bits) as i16;
+                        o.copy_from_slice(&rounded.to_le_bytes());
                     }
                     clipped
                 };
@@ -1181,6 +1184,36 @@ mod transpose_tests {
         for (b, e) in back.iter().zip(expected) {
             assert!((b - e).abs() < 1e-3, "{back:?}");
         }
+    }
+
+    // The i16 encoding of many values (whole tiles and a tail) against the
+    // plain rule: round half to even in steps, clamp to ±32767, NaN to 0.
+    #[test]
+    fn i16_encoding_rounds_half_to_even_and_clamps() {
+        use super::{SampleEncoder, Storage};
+        let encoder = SampleEncoder { storage: Storage::I16 { microvolts_per_unit: 0.5 } };
+        let mut samples: Vec<f32> = vec![0.25, 0.75, 1.25, -0.25, -0.75, -1.25, 0.0, -0.0, 16383.75, -16383.75];
+        samples.extend([20000.0, -20000.0, f32::NAN, f32::INFINITY, f32::NEG_INFINITY]);
+        samples.extend((0..200).map(|i| (i as f32 - 100.0) * 0.123_45));
+        let mut bytes = vec![0u8; 2 * samples.len()];
+        let clipped = encoder.encode(&samples, &mut bytes);
+        let expected: Vec<i16> = samples
+            .iter()
+            .map(|&v| {
+                let units = v * 2.0;
+                if units.is_nan() {
+                    0
+                } else {
+                    units.round_ties_even().clamp(-32767.0, 32767.0) as i16
+                }
+            })
+            .collect();
+        let got: Vec<i16> = bytes.chunks_exact(2).map(|b| i16::from_le_bytes([b[0], b[1]])).collect();
+        assert_eq!(got, expected);
+        assert_eq!(&got[..6], &[0, 2, 2, 0, -2, -2]);
+        // ±16383.75 µV (32767.5 steps), ±20000 µV, NaN and ±∞ are beyond
+        // ±32767 steps of 0.5 µV.
+        assert_eq!(clipped, 7);
     }
 
     #[test]
