@@ -370,8 +370,7 @@ impl Recording {
         if self.dtype == Dtype::I16 && self.layout == Layout::TimeMajor {
             // Each run is read (pread) into a buffer the thread reuses: on a
             // virtual machine this is steadier and cheaper than first touches
-            // of a fresh map of gigabytes (filter stage on a 120 s, 384-channel
-            // file: 6.3 s every time against 6.5-7.5 s through a map).
+            // of a fresh map of gigabytes (benchmarks/README.md, fourth session).
             use std::os::unix::fs::FileExt;
             let io = |source: std::io::Error| RecordingError::Io { path: self.data_path.clone(), source };
             self.check_range(start, end)?;
@@ -449,7 +448,8 @@ impl Recording {
     }
 
     /// Call `visit` with the stored bytes of frames `start..end` of a
-    /// time-major file (not at all for an empty range).
+    /// time-major file (an empty slice for an empty range) and return its
+    /// answer.
     fn visit_time_major<R>(&self, start: u64, end: u64, visit: impl FnOnce(&[u8]) -> R) -> Result<R, RecordingError> {
         let io = |source: std::io::Error| RecordingError::Io { path: self.data_path.clone(), source };
         self.check_range(start, end)?;
