@@ -350,11 +350,11 @@ impl Recording {
 
     /// Frames `start..end` in runs of `run_frames`, in parallel: run r (frames
     /// `start + r·run_frames ..`, the last one shorter) is handed to
-    /// `visit(r, frames)` as µV, time-major, the same values
+    /// `visit(r, frames)`, time-major, whose values are those
     /// [`Recording::read_frames`] gives. For time-major i16 files each run is
-    /// read and converted in a small per-thread buffer, so a caller that
-    /// rearranges the frames never sees the whole range in f32; other
-    /// formats are read whole first.
+    /// read into a small per-thread buffer and handed over as stored, so a
+    /// caller that rearranges the frames converts them as it goes and never
+    /// holds the range in f32; other formats are read whole first.
     ///
     /// # Errors
     /// As [`Recording::read_frames`].
@@ -363,7 +363,7 @@ impl Recording {
         start: u64,
         end: u64,
         run_frames: usize,
-        visit: impl Fn(usize, &[f32]) + Sync,
+        visit: impl Fn(usize, Frames) + Sync,
     ) -> Result<(), RecordingError> {
         use rayon::prelude::*;
         let run_frames = run_frames.max(1);
@@ -378,23 +378,21 @@ impl Recording {
             let frame_bytes = self.n_channels * 2;
             let file = File::open(&self.data_path).map_err(io)?;
             let n_runs = ((end - start) as usize).div_ceil(run_frames);
-            return (0..n_runs).into_par_iter().try_for_each_init(
-                || (Vec::new(), Vec::new()),
-                |(bytes, frames): &mut (Vec<u8>, Vec<f32>), run| {
-                    let first = start + (run * run_frames) as u64;
-                    let last = (first + run_frames as u64).min(end);
-                    bytes.resize((last - first) as usize * frame_bytes, 0);
-                    file.read_exact_at(bytes, first * frame_bytes as u64).map_err(io)?;
-                    frames.clear();
-                    frames.extend(bytes.chunks_exact(2).map(|b| i16_microvolts(b, gain, offset)));
-                    visit(run, frames);
-                    Ok(())
-                },
-            );
+            return (0..n_runs).into_par_iter().try_for_each_init(Vec::new, |bytes: &mut Vec<u8>, run| {
+                let first = start + (run * run_frames) as u64;
+                let last = (first + run_frames as u64).min(end);
+                bytes.resize((last - first) as usize * frame_bytes, 0);
+                file.read_exact_at(bytes, first * frame_bytes as u64).map_err(io)?;
+                visit(run, Frames::StoredI16 { bytes, gain, offset });
+                Ok(())
+            });
         }
         let mut frames = Vec::new();
         self.read_frames(start, end, &mut frames)?;
-        frames.par_chunks(run_frames * self.n_channels).enumerate().for_each(|(run, frames)| visit(run, frames));
+        frames
+            .par_chunks(run_frames * self.n_channels)
+            .enumerate()
+            .for_each(|(run, frames)| visit(run, Frames::Microvolts(frames)));
         Ok(())
     }
 
@@ -561,6 +559,20 @@ impl Frames<'_> {
         match *self {
             Frames::Microvolts(values) => values[index],
             Frames::StoredI16 { bytes, gain, offset } => i16_microvolts(&bytes[2 * index..2 * index + 2], gain, offset),
+        }
+    }
+
+    /// The values at positions `start..start + out.len()`, µV, into `out`.
+    #[inline]
+    pub fn copy_to(&self, start: usize, out: &mut [f32]) {
+        let end = start + out.len();
+        match *self {
+            Frames::Microvolts(values) => out.copy_from_slice(&values[start..end]),
+            Frames::StoredI16 { bytes, gain, offset } => {
+                for (o, b) in out.iter_mut().zip(bytes[2 * start..2 * end].chunks_exact(2)) {
+                    *o = i16_microvolts(b, gain, offset);
+                }
+            }
         }
     }
 
@@ -1057,7 +1069,9 @@ mod layout_tests {
                 for run_frames in [1, 5] {
                     let runs = std::sync::Mutex::new(Vec::new());
                     recording
-                        .visit_frame_runs(0, 2, run_frames, |r, f| runs.lock().unwrap().push((r, f.to_vec())))
+                        .visit_frame_runs(0, 2, run_frames, |r, f| {
+                            runs.lock().unwrap().push((r, (0..f.len()).map(|i| f.get(i)).collect::<Vec<f32>>()))
+                        })
                         .unwrap();
                     let mut runs = runs.into_inner().unwrap();
                     runs.sort_by_key(|(r, _)| *r);

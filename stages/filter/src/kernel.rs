@@ -14,6 +14,7 @@ use crate::params::{Design, ValidFilterParams};
 use rustfft::num_complex::Complex64;
 use rustfft::{Fft, FftPlanner};
 use spikeyard_contract::noise::RunningMedian;
+use spikeyard_contract::recording::Frames;
 use std::sync::Arc;
 
 /// Decay of the slowest band-pass pole that sets chunk margins. A margin is
@@ -147,21 +148,17 @@ impl FilterEngine {
 }
 
 /// Copy the frames of a time-major run (`frames`, `n_channels` wide) into
-/// blocks of channels: row k of `blocks[b]` gets frame k's channels
+/// blocks of channels, in µV: row k of `blocks[b]` gets frame k's channels
 /// `b · BLOCK_LANES ..`, unused lanes 0. Reading frame by frame keeps the
 /// reads sequential, which matters once a chunk is larger than the caches.
-pub fn scatter_frames(frames: &[f32], n_channels: usize, blocks: &mut [&mut [Lanes]]) {
-    for (k, frame) in frames.chunks_exact(n_channels).enumerate() {
-        for (values, rows) in frame.chunks(BLOCK_LANES).zip(blocks.iter_mut()) {
-            rows[k] = match <&Lanes>::try_from(values) {
-                // A fixed-size copy, inlined (not a library call per frame and block).
-                Ok(full) => *full,
-                Err(_) => {
-                    let mut row = [0.0; BLOCK_LANES];
-                    row[..values.len()].copy_from_slice(values);
-                    row
-                }
-            };
+pub fn scatter_frames(frames: Frames, n_channels: usize, blocks: &mut [&mut [Lanes]]) {
+    for k in 0..frames.len() / n_channels.max(1) {
+        for (b, rows) in blocks.iter_mut().enumerate() {
+            let first = b * BLOCK_LANES;
+            let lanes = BLOCK_LANES.min(n_channels - first);
+            let mut row = [0.0; BLOCK_LANES];
+            frames.copy_to(k * n_channels + first, &mut row[..lanes]);
+            rows[k] = row;
         }
     }
 }
@@ -506,7 +503,7 @@ mod tests {
             let (before, after) = (pad_before.min(n - 1), pad_after.min(n - 1));
             let mut blocks = vec![vec![[7.0; BLOCK_LANES]; before + n + after]; 2];
             let mut rows: Vec<&mut [Lanes]> = blocks.iter_mut().map(|b| &mut b[before..before + n]).collect();
-            scatter_frames(&frames, n_channels, &mut rows);
+            scatter_frames(Frames::Microvolts(&frames), n_channels, &mut rows);
             for block in blocks.iter_mut() {
                 engine.filter_block(block, before, after);
             }
