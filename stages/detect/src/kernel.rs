@@ -55,37 +55,29 @@ pub fn find_crossings(
         matches!(polarity, Polarity::Positive | Polarity::Both),
     );
     let scan = Scan { start: core.start.max(1), end: core.end.min(n_frames), negative, positive };
+    // µV frames: "above t" is "at or above the next f32 after t".
+    let scan_microvolts = |values: &[f32]| {
+        let low: Vec<f32> = thresholds_uv.iter().map(|t| -t).collect();
+        let high: Vec<f32> = thresholds_uv.iter().map(|&t| next_up(t)).collect();
+        scan.run(&low, &high, |k| values[k * n_channels..(k + 1) * n_channels].iter().copied())
+    };
     let crossings = match frames {
         Frames::StoredI16 { bytes, gain, offset } if gain > 0.0 => {
             // "Below −t" is "stored below the first value at or above −t";
             // "above t" is "stored at or above the first value above t".
-            let (low, high) = thresholds_uv
+            let (low, high): (Vec<i32>, Vec<i32>) = thresholds_uv
                 .iter()
                 .map(|&t| (i16_first_where(gain, offset, |v| v >= -t), i16_first_where(gain, offset, |v| v > t)))
                 .unzip();
-            scan.run(&Boundaries { low, high }, |k| {
+            scan.run(&low, &high, |k| {
                 bytes[2 * k * n_channels..2 * (k + 1) * n_channels]
                     .chunks_exact(2)
                     .map(|b| i32::from(i16::from_le_bytes([b[0], b[1]])))
             })
         }
-        Frames::StoredI16 { .. } | Frames::Microvolts(_) => {
-            // Stored values with a gain that is not positive: converted whole.
-            let converted: Vec<f32>;
-            let values = match frames {
-                Frames::Microvolts(values) => values,
-                Frames::StoredI16 { .. } => {
-                    converted = (0..frames.len()).map(|i| frames.get(i)).collect();
-                    &converted
-                }
-            };
-            // "Above t" is "at or above the next f32 after t".
-            let boundaries = Boundaries {
-                low: thresholds_uv.iter().map(|t| -t).collect(),
-                high: thresholds_uv.iter().map(|&t| next_up(t)).collect(),
-            };
-            scan.run(&boundaries, |k| values[k * n_channels..(k + 1) * n_channels].iter().copied())
-        }
+        Frames::Microvolts(values) => scan_microvolts(values),
+        // Stored values with a gain that is not positive: converted whole.
+        Frames::StoredI16 { .. } => scan_microvolts(&(0..frames.len()).map(|i| frames.get(i)).collect::<Vec<f32>>()),
     };
     for (k, c, sign) in crossings.into_iter().flatten() {
         let frame = first_frame + k as u64;
@@ -113,12 +105,6 @@ fn next_up(t: f32) -> f32 {
     }
 }
 
-/// Per channel: a value v is below when v < low, above when v ≥ high.
-struct Boundaries<T> {
-    low: Vec<T>,
-    high: Vec<T>,
-}
-
 /// Which frames and signs a scan for crossings covers.
 struct Scan {
     start: usize,
@@ -129,8 +115,9 @@ struct Scan {
 
 impl Scan {
     /// Crossings (frame, channel, sign) in parallel over runs of frames, in
-    /// frame order; `frame(k)` gives frame k's values.
-    fn run<T, I>(&self, boundaries: &Boundaries<T>, frame: impl Fn(usize) -> I + Sync) -> Vec<Vec<(usize, usize, f32)>>
+    /// frame order; `frame(k)` gives frame k's values. Per channel c, a value
+    /// v is below when v < `low[c]` and above when v ≥ `high[c]`.
+    fn run<T, I>(&self, low: &[T], high: &[T], frame: impl Fn(usize) -> I + Sync) -> Vec<Vec<(usize, usize, f32)>>
     where
         T: Copy + PartialOrd + Sync,
         I: Iterator<Item = T>,
@@ -138,7 +125,7 @@ impl Scan {
         use rayon::prelude::*;
         const FRAMES_PER_TASK: usize = 4096;
         let (negative, positive) = (self.negative, self.positive);
-        let bounds = || boundaries.low.iter().zip(&boundaries.high);
+        let bounds = || low.iter().zip(high);
         let crosses = |b: T, x: T, low: T, high: T| -> (bool, bool) {
             (negative & (b >= low) & (x < low), positive & (b < high) & (x >= high))
         };
