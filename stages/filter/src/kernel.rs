@@ -121,45 +121,82 @@ impl FilterEngine {
     }
 
     /// Filter a block of up to [`BLOCK_LANES`] channels at once: the same
-    /// computation as [`FilterEngine::filter_channel`] on each lane. `rows`
-    /// holds `before` rows of room, the frames read (see [`scatter_frames`]),
-    /// and `after` rows of room; the room is filled with the odd extension
-    /// and everything is filtered in place.
-    pub fn filter_block(&self, rows: &mut [Lanes], before: usize, after: usize) {
-        let n = rows.len() - before - after;
+    /// computation as [`FilterEngine::filter_channel`] on each lane, for
+    /// channels `first..` of time-major `frames` (`n_channels` wide). `rows`
+    /// gets `before` rows of odd extension, the frames, and the rest of its
+    /// rows (`after`) of odd extension, all filtered (unused lanes 0). Each frame is converted
+    /// as the forward pass reaches it, so the rows are written once before
+    /// the backward pass instead of once more by a separate copy.
+    ///
+    /// On x86-64 machines with AVX-512 or AVX2 the same code is compiled for
+    /// 16- or 8-wide registers and chosen at run time (the build itself
+    /// targets any x86-64); the operations and their order are the same (no
+    /// fused multiply-add), so the results are identical.
+    pub fn filter_block(&self, frames: &Frames, n_channels: usize, first: usize, before: usize, rows: &mut [Lanes]) {
+        #[cfg(target_arch = "x86_64")]
+        {
+            if std::is_x86_feature_detected!("avx512f") {
+                // SAFETY: the CPU supports AVX-512F, checked just above.
+                return unsafe { self.filter_block_avx512(frames, n_channels, first, before, rows) };
+            }
+            if std::is_x86_feature_detected!("avx2") {
+                // SAFETY: the CPU supports AVX2, checked just above.
+                return unsafe { self.filter_block_avx2(frames, n_channels, first, before, rows) };
+            }
+        }
+        self.filter_block_portable(frames, n_channels, first, before, rows);
+    }
+
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx512f")]
+    unsafe fn filter_block_avx512(&self, f: &Frames, n: usize, first: usize, before: usize, rows: &mut [Lanes]) {
+        self.filter_block_portable(f, n, first, before, rows);
+    }
+
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx2")]
+    unsafe fn filter_block_avx2(&self, f: &Frames, n: usize, first: usize, before: usize, rows: &mut [Lanes]) {
+        self.filter_block_portable(f, n, first, before, rows);
+    }
+
+    #[inline(always)]
+    fn filter_block_portable(
+        &self,
+        frames: &Frames,
+        n_channels: usize,
+        first: usize,
+        before: usize,
+        rows: &mut [Lanes],
+    ) {
+        let n = frames.len() / n_channels.max(1);
         if n == 0 {
             return;
         }
+        let after = rows.len() - before - n;
         debug_assert!(before < n && after < n, "odd extension reaches at most n - 1 frames");
-        // Odd extension in f64 then rounded, as `extend_odd` does.
+        let lanes = BLOCK_LANES.min(n_channels - first);
+        let load = |k: usize| -> Lanes {
+            let mut row = [0.0; BLOCK_LANES];
+            frames.copy_to(k * n_channels + first, &mut row[..lanes]);
+            row
+        };
+        // Odd extension in f64 then rounded, as `extend_odd` does; from the
+        // frames, since the forward pass overwrites the rows as it goes.
         let reflect = |about: &Lanes, x: &Lanes| -> Lanes {
             std::array::from_fn(|l| (2.0 * about[l] as f64 - x[l] as f64) as f32)
         };
-        let (first, last) = (rows[before], rows[before + n - 1]);
-        for i in 1..=before {
-            rows[before - i] = reflect(&first, &rows[before + i]);
+        let (head, last) = (load(0), load(n - 1));
+        let mut state = self.iir.start();
+        for (i, row) in rows[..before].iter_mut().enumerate() {
+            *row = self.iir.push(&mut state, reflect(&head, &load(before - i)));
         }
-        for i in 1..=after {
-            rows[before + n - 1 + i] = reflect(&last, &rows[before + n - 1 - i]);
+        for (k, row) in rows[before..before + n].iter_mut().enumerate() {
+            *row = self.iir.push(&mut state, load(k));
         }
-        self.iir.run_block(rows.iter_mut());
-        self.iir.run_block(rows.iter_mut().rev());
-    }
-}
-
-/// Copy the frames of a time-major run (`frames`, `n_channels` wide) into
-/// blocks of channels, in µV: row k of `blocks[b]` gets frame k's channels
-/// `b · BLOCK_LANES ..`, unused lanes 0. Reading frame by frame keeps the
-/// reads sequential, which matters once a chunk is larger than the caches.
-pub fn scatter_frames(frames: Frames, n_channels: usize, blocks: &mut [&mut [Lanes]]) {
-    for k in 0..frames.len() / n_channels.max(1) {
-        for (b, rows) in blocks.iter_mut().enumerate() {
-            let first = b * BLOCK_LANES;
-            let lanes = BLOCK_LANES.min(n_channels - first);
-            let mut row = [0.0; BLOCK_LANES];
-            frames.copy_to(k * n_channels + first, &mut row[..lanes]);
-            rows[k] = row;
+        for (i, row) in rows[before + n..].iter_mut().enumerate() {
+            *row = self.iir.push(&mut state, reflect(&last, &load(n - 2 - i)));
         }
+        self.iir.run(rows.iter_mut().rev());
     }
 }
 
@@ -196,44 +233,42 @@ impl Cascade {
     /// same for every L.
     #[inline(always)]
     fn run<'a, const L: usize>(&self, samples: impl Iterator<Item = &'a mut [f32; L]>) {
-        let mut single = vec![([0.0f32; L], [0.0f32; L]); self.single.len()];
-        let mut double = vec![([0.0f64; L], [0.0f64; L]); self.double.len()];
+        let mut state = self.start();
         for sample in samples {
-            let mut v = *sample;
-            for (c, (z1, z2)) in self.single.iter().zip(single.iter_mut()) {
-                step(c, z1, z2, &mut v);
-            }
-            if !self.double.is_empty() {
-                let mut w = v.map(f64::from);
-                for (c, (z1, z2)) in self.double.iter().zip(double.iter_mut()) {
-                    step(c, z1, z2, &mut w);
-                }
-                v = w.map(|x| x as f32);
-            }
-            *sample = v;
+            *sample = self.push(&mut state, *sample);
         }
     }
 
-    /// [`Cascade::run`] over blocks of channels. On x86-64 machines with
-    /// AVX2 the same code is compiled for 8-wide registers and chosen at run
-    /// time (the build itself targets any x86-64); the operations and their
-    /// order are the same (no fused multiply-add), so the results are
-    /// identical.
-    fn run_block<'a>(&self, samples: impl Iterator<Item = &'a mut Lanes>) {
-        #[cfg(target_arch = "x86_64")]
-        if std::is_x86_feature_detected!("avx2") {
-            // SAFETY: the CPU supports AVX2, checked just above.
-            unsafe { self.run_block_avx2(samples) };
-            return;
+    /// Zero state for [`Cascade::push`].
+    #[inline(always)]
+    fn start<const L: usize>(&self) -> CascadeState<L> {
+        CascadeState {
+            single: vec![([0.0; L], [0.0; L]); self.single.len()],
+            double: vec![([0.0; L], [0.0; L]); self.double.len()],
         }
-        self.run(samples);
     }
 
-    #[cfg(target_arch = "x86_64")]
-    #[target_feature(enable = "avx2")]
-    unsafe fn run_block_avx2<'a>(&self, samples: impl Iterator<Item = &'a mut Lanes>) {
-        self.run(samples);
+    /// The cascade's output for the next frame `v`.
+    #[inline(always)]
+    fn push<const L: usize>(&self, state: &mut CascadeState<L>, mut v: [f32; L]) -> [f32; L] {
+        for (c, (z1, z2)) in self.single.iter().zip(state.single.iter_mut()) {
+            step(c, z1, z2, &mut v);
+        }
+        if !self.double.is_empty() {
+            let mut w = v.map(f64::from);
+            for (c, (z1, z2)) in self.double.iter().zip(state.double.iter_mut()) {
+                step(c, z1, z2, &mut w);
+            }
+            v = w.map(|x| x as f32);
+        }
+        v
     }
+}
+
+/// The two delays of every section of a [`Cascade`], per lane.
+struct CascadeState<const L: usize> {
+    single: Vec<([f32; L], [f32; L])>,
+    double: Vec<([f64; L], [f64; L])>,
 }
 
 /// One section, one sample, every lane.
@@ -487,7 +522,8 @@ mod tests {
         FilterEngine::new(&params.check(fs).unwrap(), fs)
     }
 
-    // The SIMD-friendly block path computes what the plain per-channel path does.
+    // The SIMD-friendly block path computes what the plain per-channel path
+    // does, whichever instruction set it runs on.
     #[test]
     fn block_filtering_matches_channel_filtering() {
         for params in [
@@ -502,11 +538,13 @@ mod tests {
             let (pad_before, pad_after, core_offset, core_frames) = (engine.margin_frames(), 40, 100, 2500);
             let (before, after) = (pad_before.min(n - 1), pad_after.min(n - 1));
             let mut blocks = vec![vec![[7.0; BLOCK_LANES]; before + n + after]; 2];
-            let mut rows: Vec<&mut [Lanes]> = blocks.iter_mut().map(|b| &mut b[before..before + n]).collect();
-            scatter_frames(Frames::Microvolts(&frames), n_channels, &mut rows);
-            for block in blocks.iter_mut() {
-                engine.filter_block(block, before, after);
+            let mut portable = blocks.clone();
+            for (b, (block, plain)) in blocks.iter_mut().zip(portable.iter_mut()).enumerate() {
+                engine.filter_block(&Frames::Microvolts(&frames), n_channels, b * BLOCK_LANES, before, block);
+                engine.filter_block_portable(&Frames::Microvolts(&frames), n_channels, b * BLOCK_LANES, before, plain);
             }
+            // The path this CPU runs (AVX-512 or AVX2 on most x86-64) equals the portable build.
+            assert!(blocks == portable);
             for channel in 0..n_channels {
                 let column: Vec<f32> = frames.iter().skip(channel).step_by(n_channels).copied().collect();
                 let mut plain = vec![0.0f32; core_frames];

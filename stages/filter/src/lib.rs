@@ -27,7 +27,6 @@ use params::{FilterParams, FilteredStorage, Reference, ValidFilterParams};
 use qc::{ChannelStatus, Welch};
 use rayon::prelude::*;
 use spikeyard_contract::recording::{to_channel_major, RecordingWriter, Storage};
-use spikeyard_contract::runs::group_runs;
 use spikeyard_contract::table::write_table;
 use spikeyard_contract::{
     noise, Chunk, ContractError, ProgressReporter, Recording, RecordingError, StageFailure, StageReport, StageRequest,
@@ -57,6 +56,8 @@ pub struct FilteredChunk {
     core_row: usize,
     /// Channel path (FIR designs): the core, channel-major.
     columns: Vec<f32>,
+    /// Frames read as µV, for recordings not read in place.
+    scratch: Vec<f32>,
 }
 
 impl FilteredChunk {
@@ -123,21 +124,16 @@ pub fn filter_chunk(
         let n = chunk.read_frames();
         let (before, after) = (pad_before.min(n.saturating_sub(1)), pad_after.min(n.saturating_sub(1)));
         filtered.blocks.resize_with(n_channels.div_ceil(BLOCK_LANES), Vec::new);
-        // Frames into the blocks run by run, in parallel, straight from the
-        // reader; the rows of each block are split into the same runs.
-        const FRAMES_PER_RUN: usize = 256;
         for rows in filtered.blocks.iter_mut() {
             rows.resize(before + n + after, [0.0; BLOCK_LANES]);
         }
-        let runs = group_runs(filtered.blocks.iter_mut().map(|rows| &mut rows[before..before + n]), FRAMES_PER_RUN);
-        // Each run's rows are taken by the one call that fills them.
-        let runs: Vec<std::sync::Mutex<Vec<&mut [Lanes]>>> = runs.into_iter().map(std::sync::Mutex::new).collect();
-        recording.visit_frame_runs(chunk.read_start, chunk.read_end, FRAMES_PER_RUN, |run, frames| {
-            let mut blocks = runs[run].lock().unwrap_or_else(|poisoned| poisoned.into_inner());
-            kernel::scatter_frames(frames, n_channels, &mut blocks);
+        let (blocks, scratch) = (&mut filtered.blocks, &mut filtered.scratch);
+        recording.visit_frames(chunk.read_start, chunk.read_end, scratch, |frames| {
+            blocks
+                .par_iter_mut()
+                .enumerate()
+                .for_each(|(b, rows)| engine.filter_block(&frames, n_channels, b * BLOCK_LANES, before, rows))
         })?;
-        drop(runs);
-        filtered.blocks.par_iter_mut().for_each(|rows| engine.filter_block(rows, before, after));
         filtered.core_row = before + core_offset;
         return Ok(());
     }
