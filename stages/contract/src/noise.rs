@@ -40,7 +40,7 @@ fn median_by(values: &mut [f32], order: impl FnMut(&f32, &f32) -> std::cmp::Orde
     if n == 0 {
         return f64::NAN;
     }
-    value_of_rank(values, n / 2, n % 2 == 0, order)
+    value_of_rank(values, n / 2, n.is_multiple_of(2), order)
 }
 
 /// The value of rank `rank` in `values` (reordering them), averaged with

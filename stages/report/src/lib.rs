@@ -477,7 +477,7 @@ fn unit_sections(
         for i in 0..batch.num_rows() {
             if let (Some(&k), Some(t)) = (index.get(&ids.value(i)), times[i]) {
                 let train = &mut trains[k];
-                if train.times_s.len() % stride[k] == 0 {
+                if train.times_s.len().is_multiple_of(stride[k]) {
                     if let Some(a) = amplitudes[i] {
                         train.amplitudes.push((t, a));
                     }
