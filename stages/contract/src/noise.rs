@@ -87,7 +87,28 @@ impl RunningMedian {
     const WINDOW_TARGET: usize = 48;
 
     /// The median of `values` (finite), as [`median_of_finite`] gives it.
+    /// On x86-64 with AVX-512 the same code runs 16 values to a register,
+    /// with the same answer.
     pub fn median(&mut self, values: &[f32]) -> f64 {
+        #[cfg(target_arch = "x86_64")]
+        if std::is_x86_feature_detected!("avx512f") && std::is_x86_feature_detected!("popcnt") {
+            // SAFETY: the CPU supports AVX-512F and POPCNT, checked just above.
+            return unsafe { self.median_avx512(values) };
+        }
+        self.median_with(values, WindowSplit::run_portable)
+    }
+
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx512f,popcnt")]
+    unsafe fn median_avx512(&mut self, values: &[f32]) -> f64 {
+        // SAFETY: this function runs only where AVX-512F and POPCNT are supported; `median_with` gives the room.
+        self.median_with(values, |values, lo, hi, kept| unsafe { WindowSplit::run_avx512(values, lo, hi, kept) })
+    }
+
+    /// `split` is [`WindowSplit::run_portable`] or a faster equivalent; it is
+    /// handed a buffer of `values.len() + WindowSplit::SLACK`.
+    #[inline(always)]
+    fn median_with(&mut self, values: &[f32], split: impl Fn(&[f32], f32, f32, &mut [f32]) -> WindowSplit) -> f64 {
         let n = values.len();
         if n == 0 {
             return f64::NAN;
@@ -106,7 +127,7 @@ impl RunningMedian {
         let centre = (lanes.iter().sum::<f32>() + rest) / n as f32;
         let (lo, hi) = (centre - self.half_width, centre + self.half_width);
         self.scratch.resize(n + WindowSplit::SLACK, 0.0);
-        let WindowSplit { below, above, inside } = WindowSplit::run(values, lo, hi, &mut self.scratch);
+        let WindowSplit { below, above, inside } = split(values, lo, hi, &mut self.scratch);
         if below <= rank_low && rank_high < n - above {
             if inside > Self::WINDOW_TARGET {
                 self.half_width *= 0.9;
@@ -137,19 +158,8 @@ impl WindowSplit {
     /// Room the buffer needs beyond the values' count (whole vector stores).
     const SLACK: usize = 16;
 
-    /// `kept` holds at least `values.len() + SLACK` values. On x86-64 with
-    /// AVX-512 the values go 16 at a time through compare masks and a
-    /// compress; elsewhere one at a time. Both give the same split.
-    fn run(values: &[f32], lo: f32, hi: f32, kept: &mut [f32]) -> WindowSplit {
-        assert!(kept.len() >= values.len() + Self::SLACK);
-        #[cfg(target_arch = "x86_64")]
-        if std::is_x86_feature_detected!("avx512f") {
-            // SAFETY: the CPU supports AVX-512F, checked just above; `kept` has the room asserted above.
-            return unsafe { Self::run_avx512(values, lo, hi, kept) };
-        }
-        Self::run_portable(values, lo, hi, kept)
-    }
-
+    /// One value at a time; `kept` holds at least `values.len()` values.
+    #[inline(always)]
     fn run_portable(values: &[f32], lo: f32, hi: f32, kept: &mut [f32]) -> WindowSplit {
         let (mut below, mut above, mut inside) = (0, 0, 0);
         for &v in values {
@@ -163,10 +173,14 @@ impl WindowSplit {
         WindowSplit { below, above, inside }
     }
 
+    /// 16 values at a time through compare masks and a compress: the same
+    /// split as [`WindowSplit::run_portable`].
+    ///
     /// # Safety
-    /// The CPU supports AVX-512F and `kept.len() >= values.len() + SLACK`.
+    /// The CPU supports AVX-512F and POPCNT, and `kept.len() >= values.len() + SLACK`.
     #[cfg(target_arch = "x86_64")]
-    #[target_feature(enable = "avx512f")]
+    #[target_feature(enable = "avx512f,popcnt")]
+    #[inline]
     unsafe fn run_avx512(values: &[f32], lo: f32, hi: f32, kept: &mut [f32]) -> WindowSplit {
         use std::arch::x86_64::*;
         let (low, high) = (_mm512_set1_ps(lo), _mm512_set1_ps(hi));
@@ -220,7 +234,8 @@ mod tests {
     fn running_median_equals_the_plain_median() {
         let mut rng = crate::testing::TestRng::new(8);
         for n in [1usize, 2, 3, 10, 383, 384] {
-            let mut running = RunningMedian::default();
+            // The path this CPU runs, and the portable one.
+            let (mut running, mut portable) = (RunningMedian::default(), RunningMedian::default());
             let mut drift = 0.0;
             for set in 0..400 {
                 drift += rng.normal() * 0.3;
@@ -236,6 +251,7 @@ mod tests {
                 };
                 let expected = median_of_finite(&mut values.clone());
                 assert_eq!(running.median(&values), expected, "n = {n}, set {set}");
+                assert_eq!(portable.median_with(&values, WindowSplit::run_portable), expected, "n = {n}, set {set}");
             }
         }
         assert!(RunningMedian::default().median(&[]).is_nan());
@@ -261,9 +277,9 @@ mod tests {
             assert_eq!(WindowSplit::run_portable(&values, lo, hi, &mut kept), expected, "n = {n}");
             assert_eq!(kept[..expected.inside], kept_by_hand[..], "n = {n}");
             #[cfg(target_arch = "x86_64")]
-            if std::is_x86_feature_detected!("avx512f") {
+            if std::is_x86_feature_detected!("avx512f") && std::is_x86_feature_detected!("popcnt") {
                 let mut kept = vec![f32::NAN; n + WindowSplit::SLACK];
-                // SAFETY: AVX-512F checked just above; `kept` has the room.
+                // SAFETY: AVX-512F and POPCNT checked just above; `kept` has the room.
                 assert_eq!(unsafe { WindowSplit::run_avx512(&values, lo, hi, &mut kept) }, expected, "n = {n}");
                 assert_eq!(kept[..expected.inside], kept_by_hand[..], "n = {n}");
             }
