@@ -829,6 +829,7 @@ impl SampleEncoder {
 
     /// Encode `samples` into `out` (`bytes_per_sample()` bytes each, little
     /// endian); returns how many were clipped to the i16 range.
+    #[inline]
     pub fn encode(&self, samples: &[f32], out: &mut [u8]) -> u64 {
         debug_assert_eq!(out.len(), samples.len() * self.bytes_per_sample());
         match self.storage {

@@ -430,6 +430,7 @@ impl MedianReference {
     /// Subtract the reference from one frame. `scratch` carries the
     /// previous frame's medians from one call to the next (the answer never
     /// depends on it).
+    #[inline]
     pub fn subtract(&self, frame: &mut [f32], scratch: &mut ReferenceScratch) {
         scratch.medians.resize_with(self.members.len(), RunningMedian::default);
         if let ([members], [running]) = (self.members.as_slice(), scratch.medians.as_mut_slice()) {

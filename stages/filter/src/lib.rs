@@ -22,11 +22,11 @@ pub mod qc;
 
 use arrow_array::{ArrayRef, BooleanArray, Float64Array, Int32Array, RecordBatch, StringArray};
 use arrow_schema::{DataType, Field, Schema};
-use kernel::{FilterEngine, Lanes, Scratch, BLOCK_LANES};
+use kernel::{FilterEngine, Lanes, ReferenceScratch, Scratch, BLOCK_LANES};
 use params::{FilterParams, FilteredStorage, Reference, ValidFilterParams};
 use qc::{ChannelStatus, Welch};
 use rayon::prelude::*;
-use spikeyard_contract::recording::{to_channel_major, RecordingWriter, Storage};
+use spikeyard_contract::recording::{to_channel_major, RecordingWriter, SampleEncoder, Storage};
 use spikeyard_contract::table::write_table;
 use spikeyard_contract::{
     noise, Chunk, ContractError, ProgressReporter, Recording, RecordingError, StageFailure, StageReport, StageRequest,
@@ -65,20 +65,27 @@ impl FilteredChunk {
         self.core_frames
     }
 
-    /// Frame `frame` of the core, every channel, into `row`.
-    pub fn row_into(&self, frame: usize, row: &mut [f32]) {
+    /// Frames `first..first + count` of the core, every channel, into `tile`,
+    /// time-major (`count × n_channels` values). Block by block, so each
+    /// block's rows are read as one sequential run rather than twelve or
+    /// more interleaved streams a frame at a time (which the prefetchers
+    /// lose track of).
+    #[inline]
+    pub fn rows_into(&self, first: usize, count: usize, tile: &mut [f32]) {
+        let n = self.n_channels;
         if self.blocks.is_empty() {
-            for (channel, v) in row.iter_mut().enumerate() {
-                *v = self.columns[channel * self.core_frames + frame];
+            for (channel, column) in self.columns.chunks_exact(self.core_frames.max(1)).enumerate() {
+                for (k, v) in column[first..first + count].iter().enumerate() {
+                    tile[k * n + channel] = *v;
+                }
             }
             return;
         }
-        for (block, values) in row.chunks_mut(BLOCK_LANES).zip(&self.blocks) {
-            let values = &values[self.core_row + frame];
-            match <&mut Lanes>::try_from(&mut *block) {
-                // A fixed-size copy, inlined (not a library call per block and frame).
-                Ok(full) => *full = *values,
-                Err(_) => block.copy_from_slice(&values[..block.len()]),
+        for (b, rows) in self.blocks.iter().enumerate() {
+            let (channel, lanes) = (b * BLOCK_LANES, BLOCK_LANES.min(n - b * BLOCK_LANES));
+            let rows = &rows[self.core_row + first..self.core_row + first + count];
+            for (k, values) in rows.iter().enumerate() {
+                tile[k * n + channel..k * n + channel + lanes].copy_from_slice(&values[..lanes]);
             }
         }
     }
@@ -97,6 +104,69 @@ impl FilteredChunk {
                 }
             }
         });
+    }
+}
+
+/// How the filter's output frames become the bytes of the filtered copy:
+/// each frame of the core, the reference subtracted, encoded.
+struct FrameEncoding<'a> {
+    filtered: &'a FilteredChunk,
+    reference: Option<&'a kernel::MedianReference>,
+    encoder: &'a SampleEncoder,
+}
+
+impl FrameEncoding<'_> {
+    const TILE_FRAMES: usize = 128;
+
+    /// Frames `first..` of the core into `out`, as many as it holds; returns
+    /// how many samples were clipped. On x86-64 machines with AVX-512 or
+    /// AVX2 the same code is compiled for wider registers and chosen at run
+    /// time, with the same bytes out.
+    fn encode(&self, first: usize, out: &mut [u8], tile: &mut Vec<f32>, scratch: &mut ReferenceScratch) -> u64 {
+        #[cfg(target_arch = "x86_64")]
+        {
+            if std::is_x86_feature_detected!("avx512f") {
+                // SAFETY: the CPU supports AVX-512F, checked just above.
+                return unsafe { self.encode_avx512(first, out, tile, scratch) };
+            }
+            if std::is_x86_feature_detected!("avx2") {
+                // SAFETY: the CPU supports AVX2, checked just above.
+                return unsafe { self.encode_avx2(first, out, tile, scratch) };
+            }
+        }
+        self.encode_portable(first, out, tile, scratch)
+    }
+
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx512f")]
+    unsafe fn encode_avx512(&self, first: usize, out: &mut [u8], tile: &mut Vec<f32>, scratch: &mut ReferenceScratch) -> u64 {
+        self.encode_portable(first, out, tile, scratch)
+    }
+
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx2")]
+    unsafe fn encode_avx2(&self, first: usize, out: &mut [u8], tile: &mut Vec<f32>, scratch: &mut ReferenceScratch) -> u64 {
+        self.encode_portable(first, out, tile, scratch)
+    }
+
+    #[inline(always)]
+    fn encode_portable(&self, first: usize, out: &mut [u8], tile: &mut Vec<f32>, scratch: &mut ReferenceScratch) -> u64 {
+        let n = self.filtered.n_channels;
+        let frame_bytes = n * self.encoder.bytes_per_sample();
+        let mut clipped = 0;
+        // Tiles small enough to stay in a core's L2 cache.
+        for (t, out) in out.chunks_mut(Self::TILE_FRAMES * frame_bytes).enumerate() {
+            let count = out.len() / frame_bytes;
+            tile.resize(count * n, 0.0);
+            self.filtered.rows_into(first + t * Self::TILE_FRAMES, count, tile);
+            for (row, out) in tile.chunks_exact_mut(n).zip(out.chunks_exact_mut(frame_bytes)) {
+                if let Some(reference) = self.reference {
+                    reference.subtract(row, scratch);
+                }
+                clipped += self.encoder.encode(row, out);
+            }
+        }
+        clipped
     }
 }
 
@@ -380,17 +450,10 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
                 .par_chunks_mut(frame_bytes * FRAMES_PER_TASK)
                 .enumerate()
                 .map_init(
-                    || (vec![0.0f32; recording.n_channels], kernel::ReferenceScratch::default()),
-                    |(row, scratch), (task, out)| {
-                        let mut clipped = 0;
-                        for (k, out) in out.chunks_exact_mut(frame_bytes).enumerate() {
-                            filtered.row_into(task * FRAMES_PER_TASK + k, row);
-                            if let Some(reference) = &reference {
-                                reference.subtract(row, scratch);
-                            }
-                            clipped += encoder.encode(row, out);
-                        }
-                        clipped
+                    || (Vec::new(), ReferenceScratch::default()),
+                    |(tile, scratch), (task, out)| {
+                        let frames = FrameEncoding { filtered, reference: reference.as_ref(), encoder: &encoder };
+                        frames.encode(task * FRAMES_PER_TASK, out, tile, scratch)
                     },
                 )
                 .sum();
@@ -467,13 +530,12 @@ mod tests {
 
     fn filter_in_chunks(engine: &FilterEngine, recording: &Recording, chunk_frames: usize) -> Vec<f32> {
         let (mut filtered, mut all) = (FilteredChunk::default(), Vec::new());
-        let mut row = vec![0.0; recording.n_channels];
+        let mut rows = Vec::new();
         for chunk in recording.chunks(chunk_frames, engine.margin_frames()) {
             filter_chunk(engine, recording, &chunk, &mut filtered).unwrap();
-            for frame in 0..filtered.core_frames() {
-                filtered.row_into(frame, &mut row);
-                all.extend_from_slice(&row);
-            }
+            rows.resize(filtered.core_frames() * recording.n_channels, 0.0);
+            filtered.rows_into(0, filtered.core_frames(), &mut rows);
+            all.extend_from_slice(&rows);
         }
         all
     }
@@ -524,7 +586,7 @@ mod tests {
             assert_eq!(columns.len(), n_channels * frames);
             let mut row = vec![0.0; n_channels];
             for frame in 0..frames {
-                filtered.row_into(frame, &mut row);
+                filtered.rows_into(frame, 1, &mut row);
                 for (channel, v) in row.iter().enumerate() {
                     assert_eq!(columns[channel * frames + frame], *v, "{:?}", params.design);
                 }
