@@ -302,7 +302,10 @@ fn tables_are_byte_identical_for_one_and_two_threads_and_repeated_runs() {
         "events.parquet",
         "channel_qc.parquet",
         "channel_noise.parquet",
+        // Packed (the default config's stages are all built-in ones).
         "stages/filter/filtered.bin",
+        "stages/filter/filtered.exceptions.bin",
+        "stages/filter/filtered.exceptions.index",
         "features.parquet",
         "spikes.parquet",
         "units.parquet",
@@ -554,6 +557,10 @@ fn python_stage_reads_the_request_and_earlier_outputs() {
     assert_eq!(summary["scale"], 2.5);
     assert_eq!(summary["events_seen"], true);
     assert!(out.join("stages/summary/manifest.json").exists());
+    // With a stage of the user's after it, "auto" stored the filtered copy
+    // as plain i16, which the script read above.
+    let filtered = std::fs::read_to_string(out.join("stages/filter/filtered.toml")).unwrap();
+    assert!(filtered.contains("dtype = \"i16\"") && !filtered.contains("packing"), "{filtered}");
 }
 
 #[test]

@@ -152,12 +152,18 @@ pub fn build_plan(
 ) -> anyhow::Result<Plan> {
     let mut steps: Vec<Step> = Vec::new();
     let mut warnings = Vec::new();
-    for stage in &config.stages {
+    let built_in = |stage: &crate::config::StageConfig| {
+        builtin(&stage.name).is_some()
+            && stage.exec.as_deref().is_none_or(|e| e == format!("{}{}", crate::stages::STAGE_PREFIX, stage.name))
+    };
+    for (index, stage) in config.stages.iter().enumerate() {
         let executable = find_stage_executable(&stage.name, stage.exec.as_deref(), &config.folder())?;
-        let default_executable =
-            stage.exec.as_deref().is_none_or(|e| e == format!("{}{}", crate::stages::STAGE_PREFIX, stage.name));
-        if let (Some(b), true) = (builtin(&stage.name), default_executable) {
-            let stage_warnings = (b.check)(&stage.params, recording.sample_rate_hz).map_err(|e| {
+        let mut params = stage.params.clone();
+        if let (Some(b), true) = (builtin(&stage.name), built_in(stage)) {
+            if let Some(settle) = b.settle {
+                settle(&mut params, config.stages[index + 1..].iter().all(built_in));
+            }
+            let stage_warnings = (b.check)(&params, recording.sample_rate_hz).map_err(|e| {
                 crate::config::ConfigError { origin: config.origin(), message: format!("stage {}: {e}", stage.name) }
             })?;
             warnings.extend(stage_warnings.into_iter().map(|w| format!("stage {}: {w}", stage.name)));
@@ -165,7 +171,7 @@ pub fn build_plan(
         let executable_hash =
             hash_file(&executable).map_err(|e| anyhow::anyhow!("{}: cannot read: {e}", executable.display()))?;
         let upstream = steps.last().map(|s| s.cache_key.as_str());
-        let key = cache_key(&stage.name, &executable_hash, &stage.params, config.run.seed, recording_hash, upstream);
+        let key = cache_key(&stage.name, &executable_hash, &params, config.run.seed, recording_hash, upstream);
         let folder = output_dir.join(STAGES_FOLDER).join(&stage.name);
         // A stage is reusable only if everything before it is too.
         let upstream_cached = steps.last().is_none_or(|s| s.cached);
@@ -175,7 +181,7 @@ pub fn build_plan(
             name: stage.name.clone(),
             executable,
             executable_hash,
-            params: stage.params.clone(),
+            params,
             cache_key: key,
             folder,
             cached,

@@ -539,6 +539,7 @@ pub fn write_recording(scenario: &Scenario, folder: &Path) -> anyhow::Result<Sim
         microvolts_per_unit: MICROVOLTS_PER_UNIT,
         offset: 0.0,
         electrodes: "electrodes.csv",
+        exceptions: None,
     }
     .write(&description)
     .with_context(|| format!("{}: cannot write", description.display()))?;

@@ -18,6 +18,10 @@ pub struct BuiltinStage {
     pub about: &'static str,
     /// Check parameters against a sample rate; returns warnings.
     pub check: fn(&serde_json::Value, f64) -> Result<Vec<String>, String>,
+    /// Settle parameters that depend on the rest of the pipeline, given
+    /// whether every later stage is a built-in one run by its own
+    /// executable (None: nothing to settle).
+    pub settle: Option<fn(&mut serde_json::Value, bool)>,
 }
 
 fn parse_params<T: serde::de::DeserializeOwned>(params: &serde_json::Value) -> Result<T, String> {
@@ -33,6 +37,17 @@ pub const BUILTIN_STAGES: &[BuiltinStage] = &[
             let p: spikeyard_filter::params::FilterParams = parse_params(params)?;
             p.check(rate).map(|v| v.warnings).map_err(|e| format!("params: {e}"))
         },
+        // store_filtered_as = "auto": packed when only built-in stages read
+        // the filtered copy, plain i16 when a stage of the user's may.
+        settle: Some(|params, later_built_in| {
+            let key = "store_filtered_as";
+            if let Some(table) = params.as_object_mut() {
+                if table.get(key).is_none_or(|v| v == "auto") {
+                    let storage = if later_built_in { "packed-i16" } else { "i16" };
+                    table.insert(key.into(), storage.into());
+                }
+            }
+        }),
     },
     BuiltinStage {
         name: "detect",
@@ -41,6 +56,7 @@ pub const BUILTIN_STAGES: &[BuiltinStage] = &[
             let p: spikeyard_detect::params::DetectParams = parse_params(params)?;
             p.check(rate).map(|_| Vec::new()).map_err(|e| format!("params: {e}"))
         },
+        settle: None,
     },
     BuiltinStage {
         name: "features",
@@ -49,6 +65,7 @@ pub const BUILTIN_STAGES: &[BuiltinStage] = &[
             let p: spikeyard_features::params::FeaturesParams = parse_params(params)?;
             p.check(rate).map(|_| Vec::new()).map_err(|e| format!("params: {e}"))
         },
+        settle: None,
     },
     BuiltinStage {
         name: "cluster",
@@ -57,6 +74,7 @@ pub const BUILTIN_STAGES: &[BuiltinStage] = &[
             let p: spikeyard_cluster::params::ClusterParams = parse_params(params)?;
             p.check(rate).map(|_| Vec::new()).map_err(|e| format!("params: {e}"))
         },
+        settle: None,
     },
     BuiltinStage {
         name: "measures",
@@ -65,6 +83,7 @@ pub const BUILTIN_STAGES: &[BuiltinStage] = &[
             let p: spikeyard_measures::params::MeasuresParams = parse_params(params)?;
             p.check().map(|_| Vec::new()).map_err(|e| format!("params: {e}"))
         },
+        settle: None,
     },
     BuiltinStage {
         name: "propagation",
@@ -73,6 +92,7 @@ pub const BUILTIN_STAGES: &[BuiltinStage] = &[
             let p: spikeyard_propagation::params::PropagationParams = parse_params(params)?;
             p.check().map(|_| Vec::new()).map_err(|e| format!("params: {e}"))
         },
+        settle: None,
     },
     BuiltinStage {
         name: "report",
@@ -81,6 +101,7 @@ pub const BUILTIN_STAGES: &[BuiltinStage] = &[
             let p: spikeyard_report::params::ReportParams = parse_params(params)?;
             p.check().map(|_| Vec::new()).map_err(|e| format!("params: {e}"))
         },
+        settle: None,
     },
 ];
 

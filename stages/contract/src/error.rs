@@ -30,6 +30,8 @@ pub enum RecordingError {
     NonFinite { path: PathBuf, frame: u64, channel: usize, value: String },
     #[error("{path}: line {line}: {message}")]
     ElectrodeTable { path: PathBuf, line: usize, message: String },
+    #[error("{path}: packed data: {message}")]
+    Packed { path: PathBuf, message: String },
     #[error("{path}: channel {channel} has no position (the table lists {listed} of {channels} channels)")]
     MissingPosition { path: PathBuf, channel: usize, listed: usize, channels: usize },
 }

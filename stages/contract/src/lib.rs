@@ -27,6 +27,7 @@ pub mod events;
 pub mod hash;
 pub mod linalg;
 pub mod noise;
+pub mod packed;
 pub mod recording;
 pub mod request;
 pub mod runs;

@@ -10,6 +10,7 @@
 //! however long the recording is.
 
 use crate::error::RecordingError;
+use crate::packed::{self, PackedRange};
 use serde::Deserialize;
 use std::fs::File;
 use std::path::{Path, PathBuf};
@@ -118,7 +119,23 @@ struct RawDescription {
     #[serde(default)]
     offset: f64,
     electrodes: String,
+    #[serde(default)]
+    packing: Option<String>,
+    #[serde(default)]
+    exceptions: Option<String>,
+    #[serde(default)]
+    exceptions_index: Option<String>,
 }
+
+/// The exceptions file and its index of packed i16 data ([`crate::packed`]).
+#[derive(Debug, Clone)]
+pub struct PackedFiles {
+    pub exceptions: PathBuf,
+    pub index: PathBuf,
+}
+
+/// The `packing` value of packed i16 data ([`crate::packed`]).
+pub const PACKING_I8_EXCEPTIONS: &str = "i8+exceptions";
 
 fn one() -> f64 {
     1.0
@@ -143,6 +160,8 @@ pub struct Recording {
     pub electrodes: Vec<Electrode>,
     /// What reading does with NaN or ±Inf in float data.
     pub non_finite: NonFinite,
+    /// For packed i16 data ([`crate::packed`]): its exceptions files.
+    pub packed: Option<PackedFiles>,
     masked_samples: std::sync::Arc<std::sync::atomic::AtomicU64>,
 }
 
@@ -214,7 +233,30 @@ impl Recording {
             Ok(m) if m.is_file() => m,
             _ => return Err(RecordingError::MissingData { path, data: data_path }),
         };
-        let frame_bytes = (n_channels * dtype.bytes()) as u64;
+        let packed = match raw.packing.as_deref() {
+            None | Some("none") => None,
+            Some(PACKING_I8_EXCEPTIONS) => {
+                if dtype != Dtype::I16 || layout != Layout::TimeMajor {
+                    let expected = "used with dtype \"i16\" and layout \"time-major\" only";
+                    return Err(bad("packing", format!("\"{PACKING_I8_EXCEPTIONS}\""), expected));
+                }
+                let file = |key: &'static str, name: &Option<String>| match name {
+                    Some(name) if folder.join(name).is_file() => Ok(folder.join(name)),
+                    Some(name) => Err(RecordingError::MissingData { path: path.clone(), data: folder.join(name) }),
+                    None => Err(bad(key, "missing".into(), "the name of a file of the packed data")),
+                };
+                Some(PackedFiles {
+                    exceptions: file("exceptions", &raw.exceptions)?,
+                    index: file("exceptions_index", &raw.exceptions_index)?,
+                })
+            }
+            Some(other) => {
+                let expected = format!("\"none\" or \"{PACKING_I8_EXCEPTIONS}\"");
+                return Err(bad("packing", format!("\"{other}\""), &expected));
+            }
+        };
+        let sample_bytes = if packed.is_some() { 1 } else { dtype.bytes() };
+        let frame_bytes = (n_channels * sample_bytes) as u64;
         let bytes = metadata.len();
         if bytes % frame_bytes != 0 {
             return Err(RecordingError::PartialFrame {
@@ -222,11 +264,14 @@ impl Recording {
                 bytes,
                 frame_bytes,
                 channels: n_channels,
-                dtype: dtype.name(),
+                dtype: if packed.is_some() { "packed i16" } else { dtype.name() },
             });
         }
         if bytes == 0 {
             return Err(RecordingError::EmptyData { path: data_path });
+        }
+        if let Some(files) = &packed {
+            check_packed(files, bytes)?;
         }
         if !electrodes_path.is_file() {
             return Err(RecordingError::MissingElectrodes { path, electrodes: electrodes_path });
@@ -245,6 +290,7 @@ impl Recording {
             n_frames: bytes / frame_bytes,
             electrodes,
             non_finite: NonFinite::Refuse,
+            packed,
             masked_samples: Default::default(),
         })
     }
@@ -295,6 +341,17 @@ impl Recording {
         let (gain, offset) = (self.microvolts_per_unit, self.offset);
         // Every value is overwritten below: a reused buffer of the same size is not cleared.
         out.resize(((end.saturating_sub(start)) as usize).saturating_mul(self.n_channels), 0.0);
+        if self.packed.is_some() {
+            use rayon::prelude::*;
+            const SAMPLES_PER_TASK: usize = 1 << 16;
+            return self.visit_packed(start, end, |range| {
+                out.par_chunks_mut(SAMPLES_PER_TASK).enumerate().for_each(|(task, out)| {
+                    range.for_each(task * SAMPLES_PER_TASK, out.len(), |k, v| {
+                        out[k] = i16_microvolts(&v.to_le_bytes(), gain, offset)
+                    })
+                })
+            });
+        }
         if self.dtype == Dtype::F32 && gain == 1.0 && offset == 0.0 && self.layout == Layout::TimeMajor {
             // The common case of an already-scaled f32 file: a straight copy.
             self.visit_stored(start, end, |index, bytes| {
@@ -340,60 +397,15 @@ impl Recording {
         scratch: &mut Vec<f32>,
         visit: impl FnOnce(Frames) -> R,
     ) -> Result<R, RecordingError> {
+        let (gain, offset) = (self.microvolts_per_unit, self.offset);
+        if self.packed.is_some() {
+            return self.visit_packed(start, end, |range| visit(Frames::Packed { range, gain, offset }));
+        }
         if self.dtype == Dtype::I16 && self.layout == Layout::TimeMajor {
-            let (gain, offset) = (self.microvolts_per_unit, self.offset);
             return self.visit_time_major(start, end, |bytes| visit(Frames::StoredI16 { bytes, gain, offset }));
         }
         self.read_frames(start, end, scratch)?;
         Ok(visit(Frames::Microvolts(scratch)))
-    }
-
-    /// Frames `start..end` in runs of `run_frames`, in parallel: run r (frames
-    /// `start + r·run_frames ..`, the last one shorter) is handed to
-    /// `visit(r, frames)`, time-major, whose values are those
-    /// [`Recording::read_frames`] gives. For time-major i16 files each run is
-    /// read into a small per-thread buffer and handed over as stored, so a
-    /// caller that rearranges the frames converts them as it goes and never
-    /// holds the range in f32; other formats are read whole first.
-    ///
-    /// # Errors
-    /// As [`Recording::read_frames`].
-    pub fn visit_frame_runs(
-        &self,
-        start: u64,
-        end: u64,
-        run_frames: usize,
-        visit: impl Fn(usize, Frames) + Sync,
-    ) -> Result<(), RecordingError> {
-        use rayon::prelude::*;
-        let run_frames = run_frames.max(1);
-        if self.dtype == Dtype::I16 && self.layout == Layout::TimeMajor {
-            // Each run is read (pread) into a buffer the thread reuses: on a
-            // virtual machine this is steadier and cheaper than first touches
-            // of a fresh map of gigabytes (benchmarks/README.md, fourth session).
-            use std::os::unix::fs::FileExt;
-            let io = |source: std::io::Error| RecordingError::Io { path: self.data_path.clone(), source };
-            self.check_range(start, end)?;
-            let (gain, offset) = (self.microvolts_per_unit, self.offset);
-            let frame_bytes = self.n_channels * 2;
-            let file = File::open(&self.data_path).map_err(io)?;
-            let n_runs = ((end - start) as usize).div_ceil(run_frames);
-            return (0..n_runs).into_par_iter().try_for_each_init(Vec::new, |bytes: &mut Vec<u8>, run| {
-                let first = start + (run * run_frames) as u64;
-                let last = (first + run_frames as u64).min(end);
-                bytes.resize((last - first) as usize * frame_bytes, 0);
-                file.read_exact_at(bytes, first * frame_bytes as u64).map_err(io)?;
-                visit(run, Frames::StoredI16 { bytes, gain, offset });
-                Ok(())
-            });
-        }
-        let mut frames = Vec::new();
-        self.read_frames(start, end, &mut frames)?;
-        frames
-            .par_chunks(run_frames * self.n_channels)
-            .enumerate()
-            .for_each(|(run, frames)| visit(run, Frames::Microvolts(frames)));
-        Ok(())
     }
 
     /// Read frames `start..end` as the stored numbers (no gain, no offset),
@@ -461,6 +473,48 @@ impl Recording {
         Ok(visit(&map))
     }
 
+    /// Call `visit` with the packed range of frames `start..end` (see
+    /// [`crate::packed`]) and return its answer; an error instead when a
+    /// value looked at lacks its exception record.
+    fn visit_packed<R>(&self, start: u64, end: u64, visit: impl FnOnce(PackedRange) -> R) -> Result<R, RecordingError> {
+        self.check_range(start, end)?;
+        let files = self.packed.as_ref().expect("visit_packed is for packed data");
+        let missing = std::sync::atomic::AtomicU64::new(0);
+        let (first, last) = (start * self.n_channels as u64, end * self.n_channels as u64);
+        if first == last {
+            return Ok(visit(PackedRange { bytes: &[], records: &[], starts: &[0], first, missing: &missing }));
+        }
+        let map = |path: &PathBuf, offset: u64, len: u64| {
+            let file = File::open(path).map_err(io_at(path))?;
+            map_range(&file, offset, len as usize).map_err(io_at(path))
+        };
+        let bytes = map(&self.data_path, first, last - first)?;
+        // The index entries of the blocks touched, and their records.
+        let (b0, b1) = (first / packed::BLOCK_VALUES, (last - 1) / packed::BLOCK_VALUES + 1);
+        let entries = map(&files.index, 8 * b0, 8 * (b1 - b0 + 1))?;
+        let starts: Vec<u64> =
+            entries.chunks_exact(8).map(|e| u64::from_le_bytes(e.try_into().unwrap_or([0; 8]))).collect();
+        let (r0, r1) = (starts[0], starts[starts.len() - 1]);
+        let starts: Vec<u64> = starts.iter().map(|s| s - r0).collect();
+        let record_bytes = packed::RECORD_BYTES as u64;
+        let records =
+            if r1 == r0 { None } else { Some(map(&files.exceptions, r0 * record_bytes, (r1 - r0) * record_bytes)?) };
+        let records: &[u8] = records.as_deref().unwrap_or(&[]);
+        let range = PackedRange { bytes: &bytes, records, starts: &starts, first, missing: &missing };
+        let answer = visit(range);
+        match missing.into_inner() {
+            0 => Ok(answer),
+            value => Err(RecordingError::Packed {
+                path: files.exceptions.clone(),
+                message: format!(
+                    "value {} (frame {}) is marked as an exception but has no record",
+                    value - 1,
+                    (value - 1) / self.n_channels as u64
+                ),
+            }),
+        }
+    }
+
     /// Call `put(index, bytes)` for every stored value of frames
     /// `start..end`, where `index` is its time-major position.
     fn visit_stored(&self, start: u64, end: u64, mut put: impl FnMut(usize, &[u8])) -> Result<(), RecordingError> {
@@ -470,6 +524,10 @@ impl Recording {
         let n_channels = self.n_channels;
         if n_frames == 0 {
             return Ok(());
+        }
+        if self.packed.is_some() {
+            return self
+                .visit_packed(start, end, |range| range.for_each(0, range.len(), |k, v| put(k, &v.to_le_bytes())));
         }
         let item = self.dtype.bytes();
         match self.layout {
@@ -537,7 +595,17 @@ pub fn plan_chunks(n_frames: u64, chunk_frames: usize, margin_frames: usize) -> 
 #[derive(Debug, Clone, Copy)]
 pub enum Frames<'a> {
     Microvolts(&'a [f32]),
-    StoredI16 { bytes: &'a [u8], gain: f64, offset: f64 },
+    StoredI16 {
+        bytes: &'a [u8],
+        gain: f64,
+        offset: f64,
+    },
+    /// Packed i16 values ([`crate::packed`]), converted as `StoredI16`.
+    Packed {
+        range: PackedRange<'a>,
+        gain: f64,
+        offset: f64,
+    },
 }
 
 impl Frames<'_> {
@@ -546,6 +614,7 @@ impl Frames<'_> {
         match *self {
             Frames::Microvolts(values) => values.len(),
             Frames::StoredI16 { bytes, .. } => bytes.len() / 2,
+            Frames::Packed { range, .. } => range.len(),
         }
     }
 
@@ -559,6 +628,7 @@ impl Frames<'_> {
         match *self {
             Frames::Microvolts(values) => values[index],
             Frames::StoredI16 { bytes, gain, offset } => i16_microvolts(&bytes[2 * index..2 * index + 2], gain, offset),
+            Frames::Packed { range, gain, offset } => i16_microvolts(&range.value(index).to_le_bytes(), gain, offset),
         }
     }
 
@@ -572,6 +642,9 @@ impl Frames<'_> {
                 for (o, b) in out.iter_mut().zip(bytes[2 * start..2 * end].chunks_exact(2)) {
                     *o = i16_microvolts(b, gain, offset);
                 }
+            }
+            Frames::Packed { range, gain, offset } => {
+                range.for_each(start, out.len(), |k, v| out[k] = i16_microvolts(&v.to_le_bytes(), gain, offset))
             }
         }
     }
@@ -591,6 +664,8 @@ impl Frames<'_> {
                     *s += i16_microvolts(b, gain, offset) as f64;
                 }
             }
+            Frames::Packed { range, gain, offset } => range
+                .for_each(start, sums.len(), |k, v| sums[k] += i16_microvolts(&v.to_le_bytes(), gain, offset) as f64),
         }
     }
 }
@@ -619,6 +694,24 @@ pub fn i16_first_where(gain: f64, offset: f64, holds: impl Fn(f32) -> bool) -> i
 #[inline(always)]
 fn i16_microvolts(bytes: &[u8], gain: f64, offset: f64) -> f32 {
     ((i16::from_le_bytes([bytes[0], bytes[1]]) as f64 - offset) * gain) as f32
+}
+
+/// Check the exceptions files of packed data against the data file's
+/// `data_bytes` (one per value): whole records, and an index that fits.
+fn check_packed(files: &PackedFiles, data_bytes: u64) -> Result<(), RecordingError> {
+    let length = std::fs::metadata(&files.exceptions).map_err(io_at(&files.exceptions))?.len();
+    if length % packed::RECORD_BYTES as u64 != 0 {
+        let message = format!("{length} bytes is not a whole number of {}-byte records", packed::RECORD_BYTES);
+        return Err(RecordingError::Packed { path: files.exceptions.clone(), message });
+    }
+    let index = std::fs::read(&files.index).map_err(io_at(&files.index))?;
+    packed::check_index(&index, data_bytes, length / packed::RECORD_BYTES as u64)
+        .map_err(|message| RecordingError::Packed { path: files.index.clone(), message })
+}
+
+/// An I/O error's conversion to a [`RecordingError`] naming `path`.
+fn io_at(path: &Path) -> impl FnOnce(std::io::Error) -> RecordingError + '_ {
+    move |source| RecordingError::Io { path: path.to_path_buf(), source }
 }
 
 fn map_range(file: &File, offset: u64, len: usize) -> std::io::Result<memmap2::Mmap> {
@@ -756,6 +849,8 @@ pub struct DescriptionFields<'a> {
     pub offset: f64,
     /// Electrode table name, relative to the description.
     pub electrodes: &'a str,
+    /// For packed i16 data: the exceptions file and its index, relative to the description.
+    pub exceptions: Option<[&'a str; 2]>,
 }
 
 impl DescriptionFields<'_> {
@@ -772,7 +867,13 @@ impl DescriptionFields<'_> {
             self.offset,
             self.electrodes
         );
-        std::fs::write(path, text)
+        let packing = match self.exceptions {
+            Some([exceptions, index]) => format!(
+                "packing = \"{PACKING_I8_EXCEPTIONS}\"\nexceptions = \"{exceptions}\"\nexceptions_index = \"{index}\"\n"
+            ),
+            None => String::new(),
+        };
+        std::fs::write(path, text + &packing)
     }
 }
 
@@ -807,6 +908,9 @@ pub enum Storage {
     /// 16-bit integers of `microvolts_per_unit` each, rounded; values
     /// beyond ±32767 units are clipped (and counted).
     I16 { microvolts_per_unit: f64 },
+    /// The same integers, packed: one byte each plus exception records
+    /// ([`crate::packed`]); read back exactly as `I16`.
+    PackedI16 { microvolts_per_unit: f64 },
 }
 
 /// How much a [`RecordingWriter`] writes between requests to start writeback.
@@ -823,7 +927,7 @@ impl SampleEncoder {
     pub fn bytes_per_sample(&self) -> usize {
         match self.storage {
             Storage::F32 => 4,
-            Storage::I16 { .. } => 2,
+            Storage::I16 { .. } | Storage::PackedI16 { .. } => 2,
         }
     }
 
@@ -839,7 +943,7 @@ impl SampleEncoder {
                 }
                 0
             }
-            Storage::I16 { microvolts_per_unit } => {
+            Storage::I16 { microvolts_per_unit } | Storage::PackedI16 { microvolts_per_unit } => {
                 let scale = (1.0 / microvolts_per_unit) as f32;
                 // Adding 1.5·2²³ rounds an f32 of magnitude below 2²² to the
                 // nearest integer (ties to even), which then sits in the low
@@ -886,6 +990,13 @@ pub struct RecordingWriter {
     storage: Storage,
     clipped: u64,
     bytes: Vec<u8>,
+    /// Packed storage: the exceptions file and its index, and buffers for
+    /// the packed bytes, records and index entries.
+    exceptions: Option<(std::io::BufWriter<File>, std::io::BufWriter<File>)>,
+    packer: packed::Packer,
+    packed: Vec<u8>,
+    records: Vec<u8>,
+    index: Vec<u8>,
     /// Bytes written so far, and how many of them the disk was asked to
     /// take (see [`RecordingWriter::write_encoded`]).
     written: u64,
@@ -903,6 +1014,14 @@ impl RecordingWriter {
     ) -> std::io::Result<Self> {
         write_electrodes(&folder.join(format!("{stem}.electrodes.csv")), electrodes)?;
         let data = File::create(folder.join(format!("{stem}.bin")))?;
+        let create =
+            |name: String| File::create(folder.join(name)).map(|f| std::io::BufWriter::with_capacity(1 << 20, f));
+        let exceptions = match storage {
+            Storage::PackedI16 { .. } => {
+                Some((create(format!("{stem}.exceptions.bin"))?, create(format!("{stem}.exceptions.index"))?))
+            }
+            _ => None,
+        };
         Ok(RecordingWriter {
             folder: folder.to_path_buf(),
             stem: stem.to_string(),
@@ -912,6 +1031,11 @@ impl RecordingWriter {
             storage,
             clipped: 0,
             bytes: Vec::new(),
+            exceptions,
+            packer: packed::Packer::default(),
+            packed: Vec::new(),
+            records: Vec::new(),
+            index: Vec::new(),
             written: 0,
             writeback_started: 0,
         })
@@ -943,6 +1067,17 @@ impl RecordingWriter {
         use std::io::Write;
         debug_assert_eq!(bytes.len() % (self.n_channels * self.encoder().bytes_per_sample()), 0);
         self.clipped += clipped;
+        let bytes = match &mut self.exceptions {
+            Some((exceptions, index)) => {
+                self.records.clear();
+                self.index.clear();
+                self.packer.pack(bytes, &mut self.packed, &mut self.records, &mut self.index);
+                exceptions.write_all(&self.records)?;
+                index.write_all(&self.index)?;
+                &self.packed
+            }
+            None => bytes,
+        };
         self.data.write_all(bytes)?;
         self.written += bytes.len() as u64;
         // Start the disk writes every so often instead of leaving gigabytes
@@ -980,11 +1115,23 @@ impl RecordingWriter {
         let mut data = self.data;
         data.flush()?;
         data.get_ref().sync_all()?;
+        if let Some((mut exceptions, mut index)) = self.exceptions {
+            let mut last = Vec::new();
+            self.packer.finish(&mut last);
+            index.write_all(&last)?;
+            for file in [&mut exceptions, &mut index] {
+                file.flush()?;
+                file.get_ref().sync_all()?;
+            }
+        }
         let description = self.folder.join(format!("{}.toml", self.stem));
         let (dtype, microvolts_per_unit) = match self.storage {
             Storage::F32 => (Dtype::F32, 1.0),
-            Storage::I16 { microvolts_per_unit } => (Dtype::I16, microvolts_per_unit),
+            Storage::I16 { microvolts_per_unit } | Storage::PackedI16 { microvolts_per_unit } => {
+                (Dtype::I16, microvolts_per_unit)
+            }
         };
+        let exceptions = [format!("{}.exceptions.bin", self.stem), format!("{}.exceptions.index", self.stem)];
         DescriptionFields {
             data: &format!("{}.bin", self.stem),
             sample_rate_hz: self.sample_rate_hz,
@@ -993,6 +1140,8 @@ impl RecordingWriter {
             microvolts_per_unit,
             offset: 0.0,
             electrodes: &format!("{}.electrodes.csv", self.stem),
+            exceptions: matches!(self.storage, Storage::PackedI16 { .. })
+                .then(|| [exceptions[0].as_str(), exceptions[1].as_str()]),
         }
         .write(&description)?;
         Ok(description)
@@ -1066,20 +1215,6 @@ mod layout_tests {
                 assert_eq!(recording.n_frames, 2);
                 assert_eq!(frames(&recording, 0, 2), expected, "{dtype} {layout}");
                 assert_eq!(frames(&recording, 1, 2), expected[3..].to_vec(), "{dtype} {layout}");
-                // Run by run: runs of one frame, and one run longer than the range.
-                for run_frames in [1, 5] {
-                    let runs = std::sync::Mutex::new(Vec::new());
-                    recording
-                        .visit_frame_runs(0, 2, run_frames, |r, f| {
-                            runs.lock().unwrap().push((r, (0..f.len()).map(|i| f.get(i)).collect::<Vec<f32>>()))
-                        })
-                        .unwrap();
-                    let mut runs = runs.into_inner().unwrap();
-                    runs.sort_by_key(|(r, _)| *r);
-                    let joined: Vec<f32> = runs.iter().flat_map(|(_, f)| f.clone()).collect();
-                    assert_eq!(runs.len(), 2usize.div_ceil(run_frames), "{dtype} {layout}");
-                    assert_eq!(joined, expected, "{dtype} {layout}, runs of {run_frames}");
-                }
                 // Value by value (converted where looked at for i16), and rows added.
                 let (values, sums) = recording
                     .visit_frames(1, 2, &mut Vec::new(), |f| {
@@ -1164,6 +1299,8 @@ pub fn to_channel_major(frames: &[f32], n_channels: usize, out: &mut Vec<f32>) {
 
 #[cfg(test)]
 mod transpose_tests {
+    use super::{packed, Dtype, Electrode, Frames, Recording, RecordingWriter, Storage};
+
     #[test]
     fn channel_major_columns_match_strided_reads() {
         let (n_frames, n_channels) = (130, 70);
@@ -1199,6 +1336,106 @@ mod transpose_tests {
         for (b, e) in back.iter().zip(expected) {
             assert!((b - e).abs() < 1e-3, "{back:?}");
         }
+    }
+
+    /// The same frames written as plain and as packed i16 into `dir`.
+    fn plain_and_packed(dir: &std::path::Path, n_channels: usize, samples: &[f32]) -> (Recording, Recording) {
+        let electrodes: Vec<Electrode> = (0..n_channels)
+            .map(|channel| Electrode { channel, x_um: channel as f64, y_um: 0.0, label: None, group: None })
+            .collect();
+        let step = 0.5;
+        let open = |stem: &str, storage: Storage| {
+            let mut writer = RecordingWriter::create(dir, stem, 1000.0, &electrodes, storage).unwrap();
+            // In two pieces, the second starting inside an index block.
+            let cut = samples.len() / n_channels / 3 * n_channels;
+            writer.write_frames(&samples[..cut]).unwrap();
+            writer.write_frames(&samples[cut..]).unwrap();
+            Recording::open(&writer.finish().unwrap()).unwrap()
+        };
+        (
+            open("plain", Storage::I16 { microvolts_per_unit: step }),
+            open("packed", Storage::PackedI16 { microvolts_per_unit: step }),
+        )
+    }
+
+    // Packed i16 reads back exactly as plain i16, whole and in ranges that
+    // cut index blocks, through every reader, at about half the bytes.
+    #[test]
+    fn packed_i16_reads_as_plain_i16() {
+        let dir = tempfile::tempdir().unwrap();
+        let n_channels = 7;
+        let mut rng = crate::testing::TestRng::new(3);
+        // Noise of 40 steps (a few % beyond ±127 steps), rare spikes, clipping.
+        let samples: Vec<f32> = (0..40_000 * n_channels)
+            .map(|i| match i % 997 {
+                0 => -20_000.0,
+                1 => 300.0,
+                _ => (rng.normal() * 20.0) as f32,
+            })
+            .collect();
+        let (plain, packed) = plain_and_packed(dir.path(), n_channels, &samples);
+        assert_eq!((packed.n_frames, packed.dtype), (plain.n_frames, Dtype::I16));
+        let bytes = |r: &Recording| {
+            let files = r.packed.iter().flat_map(|f| [&f.exceptions, &f.index]);
+            std::iter::once(&r.data_path).chain(files).map(|p| std::fs::metadata(p).unwrap().len()).sum::<u64>()
+        };
+        assert!(bytes(&packed) * 10 < bytes(&plain) * 6, "{} against {}", bytes(&packed), bytes(&plain));
+        let n = plain.n_frames;
+        for (start, end) in [(0, n), (0, 1), (9362, 9363), (9000, 19_000), (n - 3, n), (5, 5)] {
+            let (mut a, mut b) = (Vec::new(), Vec::new());
+            plain.read_frames(start, end, &mut a).unwrap();
+            packed.read_frames(start, end, &mut b).unwrap();
+            assert_eq!(a, b, "read_frames {start}..{end}");
+            let (mut sa, mut sb) = (Vec::new(), Vec::new());
+            plain.read_stored(start, end, &mut sa).unwrap();
+            packed.read_stored(start, end, &mut sb).unwrap();
+            assert_eq!(sa, sb, "read_stored {start}..{end}");
+            let look = |f: Frames| {
+                let values: Vec<f32> = (0..f.len()).map(|i| f.get(i)).collect();
+                let mut copied = vec![0.0; f.len()];
+                f.copy_to(0, &mut copied);
+                let mut sums = vec![1.0f64; n_channels.min(f.len())];
+                f.add_to(f.len() - sums.len(), &mut sums);
+                (values, copied, sums)
+            };
+            let a = plain.visit_frames(start, end, &mut Vec::new(), look).unwrap();
+            let b = packed.visit_frames(start, end, &mut Vec::new(), look).unwrap();
+            assert_eq!(a, b, "visit_frames {start}..{end}");
+            assert_eq!(a.0, a.1);
+        }
+    }
+
+    // Damaged exceptions files are refused with the file named: a partial
+    // record, an index that does not add up, and a sentinel whose record is
+    // gone (found when that value is read).
+    #[test]
+    fn damaged_packed_files_are_refused() {
+        let dir = tempfile::tempdir().unwrap();
+        let samples: Vec<f32> = (0..3000).map(|i| if i % 10 == 0 { 500.0 } else { 1.0 }).collect();
+        let (_, packed) = plain_and_packed(dir.path(), 3, &samples);
+        let files = packed.packed.clone().unwrap();
+        let description = packed.description_path.clone();
+        let records = std::fs::read(&files.exceptions).unwrap();
+        let refused = |what: &str| {
+            let message = Recording::open(&description).unwrap_err().to_string();
+            assert!(message.contains(what), "{message}");
+        };
+        std::fs::write(&files.exceptions, &records[..records.len() - 1]).unwrap();
+        refused("exceptions.bin: packed data: 1199 bytes is not a whole number of 4-byte records");
+        std::fs::write(&files.exceptions, &records[..records.len() - packed::RECORD_BYTES]).unwrap();
+        refused("exceptions.index: packed data: the index counts 300 records, but the exceptions file holds 299");
+        // The last record moved to a position that is not a sentinel.
+        let mut moved = records.clone();
+        let last = moved.len() - packed::RECORD_BYTES;
+        moved[last..last + 2].copy_from_slice(&2999u16.to_le_bytes());
+        std::fs::write(&files.exceptions, &moved).unwrap();
+        let recording = Recording::open(&description).unwrap();
+        recording.read_frames(0, 500, &mut Vec::new()).unwrap();
+        let message = recording.read_frames(0, 1000, &mut Vec::new()).unwrap_err().to_string();
+        assert!(message.contains("value 2990 (frame 996) is marked as an exception but has no record"), "{message}");
+        let text = std::fs::read_to_string(&description).unwrap();
+        std::fs::write(&description, text.replace("i8+exceptions", "zip")).unwrap();
+        refused("packing is \"zip\", but it must be \"none\" or \"i8+exceptions\"");
     }
 
     // The i16 encoding of many values (whole tiles and a tail) against the

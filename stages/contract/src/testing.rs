@@ -29,6 +29,7 @@ pub fn write_f32_recording(
         microvolts_per_unit: 1.0,
         offset: 0.0,
         electrodes: &format!("{name}.csv"),
+        exceptions: None,
     }
     .write(&description)
     .expect("write description");

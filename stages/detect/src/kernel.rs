@@ -49,6 +49,36 @@ pub fn find_crossings(
     last_crossing: &mut [Option<u64>],
     out: &mut Vec<Event>,
 ) {
+    if let Frames::Packed { range, gain, offset } = frames {
+        // Decoded whole to plain i16 first, in parallel, into a buffer kept
+        // from call to call (a fresh one this size would be fresh pages from
+        // the system every time), then scanned as such.
+        use rayon::prelude::*;
+        const VALUES_PER_TASK: usize = 1 << 16;
+        thread_local!(static DECODED: std::cell::RefCell<Vec<u8>> = const { std::cell::RefCell::new(Vec::new()) });
+        let mut bytes = DECODED.with(|d| std::mem::take(&mut *d.borrow_mut()));
+        bytes.resize(2 * range.len(), 0);
+        bytes
+            .par_chunks_mut(2 * VALUES_PER_TASK)
+            .enumerate()
+            .for_each(|(task, out)| range.decode(task * VALUES_PER_TASK, out));
+        let frames = Frames::StoredI16 { bytes: &bytes, gain, offset };
+        let (thresholds, polarity) = (thresholds_uv, polarity);
+        find_crossings(
+            frames,
+            n_channels,
+            first_frame,
+            core,
+            thresholds,
+            polarity,
+            peak_frames,
+            dead_frames,
+            last_crossing,
+            out,
+        );
+        DECODED.with(|d| *d.borrow_mut() = bytes);
+        return;
+    }
     let n_frames = frames.len() / n_channels.max(1);
     let (negative, positive) = (
         matches!(polarity, Polarity::Negative | Polarity::Both),
@@ -61,14 +91,17 @@ pub fn find_crossings(
         let high: Vec<f32> = thresholds_uv.iter().map(|&t| next_up(t)).collect();
         scan.run(&low, &high, |k| values[k * n_channels..(k + 1) * n_channels].iter().copied())
     };
+    // "Below −t" is "stored below the first value at or above −t"; "above
+    // t" is "stored at or above the first value above t".
+    let stored_bounds = |gain: f64, offset: f64| -> (Vec<i32>, Vec<i32>) {
+        thresholds_uv
+            .iter()
+            .map(|&t| (i16_first_where(gain, offset, |v| v >= -t), i16_first_where(gain, offset, |v| v > t)))
+            .unzip()
+    };
     let crossings = match frames {
         Frames::StoredI16 { bytes, gain, offset } if gain > 0.0 => {
-            // "Below −t" is "stored below the first value at or above −t";
-            // "above t" is "stored at or above the first value above t".
-            let (low, high): (Vec<i32>, Vec<i32>) = thresholds_uv
-                .iter()
-                .map(|&t| (i16_first_where(gain, offset, |v| v >= -t), i16_first_where(gain, offset, |v| v > t)))
-                .unzip();
+            let (low, high) = stored_bounds(gain, offset);
             scan.run(&low, &high, |k| {
                 bytes[2 * k * n_channels..2 * (k + 1) * n_channels]
                     .chunks_exact(2)
@@ -76,8 +109,11 @@ pub fn find_crossings(
             })
         }
         Frames::Microvolts(values) => scan_microvolts(values),
-        // Stored values with a gain that is not positive: converted whole.
-        Frames::StoredI16 { .. } => scan_microvolts(&(0..frames.len()).map(|i| frames.get(i)).collect::<Vec<f32>>()),
+        // Stored values with a gain that is not positive: converted whole
+        // (packed frames were decoded above).
+        Frames::StoredI16 { .. } | Frames::Packed { .. } => {
+            scan_microvolts(&(0..frames.len()).map(|i| frames.get(i)).collect::<Vec<f32>>())
+        }
     };
     for (k, c, sign) in crossings.into_iter().flatten() {
         let frame = first_frame + k as u64;

@@ -49,13 +49,18 @@ pub fn cut_snippet(
     let t = start - base;
     let base = base as i64;
     let value = |frame: i64| window.value(frame, channel, n_channels) as f64;
+    // Frames k − 1 ..= k + 2 around output j's frame k = base + j, slid
+    // along: each frame is read once, not four times.
+    let mut p = [value(base - 1), value(base), value(base + 1), value(base + 2)];
     for (j, o) in out.iter_mut().enumerate() {
-        let k = base + j as i64;
+        if j > 0 {
+            p = [p[1], p[2], p[3], value(base + j as i64 + 2)];
+        }
+        let [p0, p1, p2, p3] = p;
         if t == 0.0 {
-            *o = value(k);
+            *o = p1;
             continue;
         }
-        let (p0, p1, p2, p3) = (value(k - 1), value(k), value(k + 1), value(k + 2));
         *o = p1 + 0.5 * t * (p2 - p0 + t * (2.0 * p0 - 5.0 * p1 + 4.0 * p2 - p3 + t * (3.0 * (p1 - p2) + p3 - p0)));
     }
 }

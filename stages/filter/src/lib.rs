@@ -139,18 +139,36 @@ impl FrameEncoding<'_> {
 
     #[cfg(target_arch = "x86_64")]
     #[target_feature(enable = "avx512f")]
-    unsafe fn encode_avx512(&self, first: usize, out: &mut [u8], tile: &mut Vec<f32>, scratch: &mut ReferenceScratch) -> u64 {
+    unsafe fn encode_avx512(
+        &self,
+        first: usize,
+        out: &mut [u8],
+        tile: &mut Vec<f32>,
+        scratch: &mut ReferenceScratch,
+    ) -> u64 {
         self.encode_portable(first, out, tile, scratch)
     }
 
     #[cfg(target_arch = "x86_64")]
     #[target_feature(enable = "avx2")]
-    unsafe fn encode_avx2(&self, first: usize, out: &mut [u8], tile: &mut Vec<f32>, scratch: &mut ReferenceScratch) -> u64 {
+    unsafe fn encode_avx2(
+        &self,
+        first: usize,
+        out: &mut [u8],
+        tile: &mut Vec<f32>,
+        scratch: &mut ReferenceScratch,
+    ) -> u64 {
         self.encode_portable(first, out, tile, scratch)
     }
 
     #[inline(always)]
-    fn encode_portable(&self, first: usize, out: &mut [u8], tile: &mut Vec<f32>, scratch: &mut ReferenceScratch) -> u64 {
+    fn encode_portable(
+        &self,
+        first: usize,
+        out: &mut [u8],
+        tile: &mut Vec<f32>,
+        scratch: &mut ReferenceScratch,
+    ) -> u64 {
         let n = self.filtered.n_channels;
         let frame_bytes = n * self.encoder.bytes_per_sample();
         let mut clipped = 0;
@@ -403,10 +421,14 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     let chunks = recording.chunks(chunk_frames, engine.margin_frames());
     let storage = match params.store_filtered_as {
         FilteredStorage::F32 => Storage::F32,
-        FilteredStorage::I16 => {
+        FilteredStorage::Auto | FilteredStorage::I16 | FilteredStorage::PackedI16 => {
             let noisiest =
                 qc.noise_mad_uv.iter().zip(&usable).filter(|(_, u)| **u).map(|(n, _)| *n).fold(0.0, f64::max);
-            Storage::I16 { microvolts_per_unit: if noisiest > 0.0 { noisiest / 64.0 } else { 0.01 } }
+            let microvolts_per_unit = if noisiest > 0.0 { noisiest / 64.0 } else { 0.01 };
+            match params.store_filtered_as {
+                FilteredStorage::PackedI16 => Storage::PackedI16 { microvolts_per_unit },
+                _ => Storage::I16 { microvolts_per_unit },
+            }
         }
     };
     let mut writer = RecordingWriter::create(
@@ -478,7 +500,7 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
             writer.clipped_samples()
         ));
     }
-    if let Storage::I16 { microvolts_per_unit } = storage {
+    if let Storage::I16 { microvolts_per_unit } | Storage::PackedI16 { microvolts_per_unit } = storage {
         report.summary.insert("filtered_microvolts_per_unit".into(), microvolts_per_unit.into());
     }
     writer.finish().map_err(|e| output(e, FILTERED_RECORDING))?;

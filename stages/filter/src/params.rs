@@ -27,10 +27,20 @@ pub enum Reference {
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub enum FilteredStorage {
+    /// Set by `spikeyard run` before the stage starts: "packed-i16" when
+    /// every later stage is a built-in one, else "i16" (a stage of the
+    /// user's reads plain contract formats). Run alone, the stage takes it
+    /// as "i16".
+    Auto,
     /// 16-bit integers, a step of 1/64 of the noisiest usable channel's
     /// noise σ (range ±512 σ; beyond it samples clip and are counted): half
     /// the bytes of f32, with rounding far below the noise.
     I16,
+    /// The same 16-bit integers, packed: one byte per value, plus a record
+    /// for each value outside ±127 steps (±2 σ of the noisiest channel) in
+    /// `filtered.exceptions.bin`. Read back exactly as "i16", in about 57 %
+    /// of its bytes on a typical probe ([`spikeyard_contract::packed`]).
+    PackedI16,
     /// 32-bit floats, exact.
     F32,
 }
@@ -72,7 +82,7 @@ pub struct FilterParams {
     /// NaN or ±Inf in float recordings: "refuse" (stop with the frame and
     /// channel, default) or "zero" (replace by 0 µV, counted in the report).
     pub non_finite: spikeyard_contract::recording::NonFinite,
-    /// "i16" (default) or "f32": how `filtered.bin` stores the filtered signal.
+    /// "auto" (default), "packed-i16", "i16" or "f32": how `filtered.bin` stores the filtered signal.
     pub store_filtered_as: FilteredStorage,
 }
 
@@ -94,7 +104,7 @@ impl Default for FilterParams {
             dead_below_ratio: 0.2,
             noisy_above_ratio: 3.0,
             non_finite: spikeyard_contract::recording::NonFinite::Refuse,
-            store_filtered_as: FilteredStorage::I16,
+            store_filtered_as: FilteredStorage::Auto,
         }
     }
 }
