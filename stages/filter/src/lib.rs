@@ -11,8 +11,9 @@
 //!    `channel_psd.parquet`;
 //! 4. main pass: chunk by chunk (with margins), filter every channel in
 //!    parallel, subtract the median of the usable channels, append to
-//!    `filtered.bin` (f32 µV, time-major), described by `filtered.toml` in
-//!    the contract's recording format, so any later stage reads it with the
+//!    `filtered.bin` (time-major; i16, packed i16 or f32 µV as
+//!    `store_filtered_as` says), described by `filtered.toml` in the
+//!    contract's recording format, so any later stage reads it with the
 //!    same reader as raw data.
 
 pub mod design;
