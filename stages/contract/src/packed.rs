@@ -256,14 +256,13 @@ impl Packer {
             let n = ((BLOCK_VALUES - position) as usize).min(out.len());
             let (segment, rest) = std::mem::take(&mut out).split_at_mut(n);
             for (t, (tile, bytes)) in values[..2 * n].chunks(2 * TILE).zip(segment.chunks_mut(TILE)).enumerate() {
-                // Bytes and a mask of the values that need a record: vectorizable.
-                let mut outside = 0u64;
-                for (l, (v, b)) in tile.chunks_exact(2).zip(bytes.iter_mut()).enumerate() {
+                // The bytes (vectorizable), then the values that need a
+                // record are those whose byte is the sentinel.
+                for (v, b) in tile.chunks_exact(2).zip(bytes.iter_mut()) {
                     let v = i16::from_le_bytes([v[0], v[1]]);
-                    let fits = (-127..=127).contains(&v);
-                    *b = if fits { v as i8 as u8 } else { SENTINEL };
-                    outside |= u64::from(!fits) << l;
+                    *b = if (-127..=127).contains(&v) { v as i8 as u8 } else { SENTINEL };
                 }
+                let mut outside = sentinel_mask(bytes);
                 while outside != 0 {
                     let l = outside.trailing_zeros() as usize;
                     outside &= outside - 1;

@@ -633,7 +633,7 @@ impl Frames<'_> {
     }
 
     /// The values at positions `start..start + out.len()`, µV, into `out`.
-    #[inline]
+    #[inline(always)]
     pub fn copy_to(&self, start: usize, out: &mut [f32]) {
         let end = start + out.len();
         match *self {
@@ -643,9 +643,7 @@ impl Frames<'_> {
                     *o = i16_microvolts(b, gain, offset);
                 }
             }
-            Frames::Packed { range, gain, offset } => {
-                range.for_each(start, out.len(), |k, v| out[k] = i16_microvolts(&v.to_le_bytes(), gain, offset))
-            }
+            Frames::Packed { range, gain, offset } => copy_packed(range, gain, offset, start, out),
         }
     }
 
@@ -668,6 +666,13 @@ impl Frames<'_> {
                 .for_each(start, sums.len(), |k, v| sums[k] += i16_microvolts(&v.to_le_bytes(), gain, offset) as f64),
         }
     }
+}
+
+/// [`Frames::copy_to`] for packed frames, kept out of line so that the
+/// plain arms stay small enough to inline into the callers' loops.
+#[inline(never)]
+fn copy_packed(range: PackedRange, gain: f64, offset: f64, start: usize, out: &mut [f32]) {
+    range.for_each(start, out.len(), |k, v| out[k] = i16_microvolts(&v.to_le_bytes(), gain, offset))
 }
 
 /// The smallest stored i16 value whose µV (as [`Recording::read_frames`]

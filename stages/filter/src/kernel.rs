@@ -175,11 +175,7 @@ impl FilterEngine {
         let after = rows.len() - before - n;
         debug_assert!(before < n && after < n, "odd extension reaches at most n - 1 frames");
         let lanes = BLOCK_LANES.min(n_channels - first);
-        let load = |k: usize| -> Lanes {
-            let mut row = [0.0; BLOCK_LANES];
-            frames.copy_to(k * n_channels + first, &mut row[..lanes]);
-            row
-        };
+        let load = |k: usize| load_lanes(frames, k * n_channels + first, lanes);
         // Odd extension in f64 then rounded, as `extend_odd` does; from the
         // frames, since the forward pass overwrites the rows as it goes.
         let reflect = |about: &Lanes, x: &Lanes| -> Lanes {
@@ -198,6 +194,16 @@ impl FilterEngine {
         }
         self.iir.run(rows.iter_mut().rev());
     }
+}
+
+/// `lanes` values of `frames` from `start` on, then zeros. Always inlined, so
+/// that the conversion is compiled with the caller's instruction set (a
+/// closure would be a function of its own, built for the baseline).
+#[inline(always)]
+fn load_lanes(frames: &Frames, start: usize, lanes: usize) -> Lanes {
+    let mut row = [0.0; BLOCK_LANES];
+    frames.copy_to(start, &mut row[..lanes]);
+    row
 }
 
 /// Pole radius above which a section runs in double precision: round-off
