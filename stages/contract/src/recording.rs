@@ -709,6 +709,13 @@ fn check_packed(files: &PackedFiles, data_bytes: u64) -> Result<(), RecordingErr
         let message = format!("{length} bytes is not a whole number of {}-byte records", packed::RECORD_BYTES);
         return Err(RecordingError::Packed { path: files.exceptions.clone(), message });
     }
+    // The size first, so a wrong file is not read whole.
+    let (index_length, entries) =
+        (std::fs::metadata(&files.index).map_err(io_at(&files.index))?.len(), packed::index_entries(data_bytes));
+    if index_length != 8 * entries {
+        let message = format!("{index_length} bytes, but {data_bytes} values need {entries} entries of 8 bytes");
+        return Err(RecordingError::Packed { path: files.index.clone(), message });
+    }
     let index = std::fs::read(&files.index).map_err(io_at(&files.index))?;
     packed::check_index(&index, data_bytes, length / packed::RECORD_BYTES as u64)
         .map_err(|message| RecordingError::Packed { path: files.index.clone(), message })
@@ -1429,6 +1436,11 @@ mod transpose_tests {
         refused("exceptions.bin: packed data: 1199 bytes is not a whole number of 4-byte records");
         std::fs::write(&files.exceptions, &records[..records.len() - packed::RECORD_BYTES]).unwrap();
         refused("exceptions.index: packed data: the index counts 300 records, but the exceptions file holds 299");
+        std::fs::write(&files.exceptions, &records).unwrap();
+        let index = std::fs::read(&files.index).unwrap();
+        std::fs::write(&files.index, &index[..8]).unwrap();
+        refused("exceptions.index: packed data: 8 bytes, but 3000 values need 2 entries of 8 bytes");
+        std::fs::write(&files.index, &index).unwrap();
         // The last record moved to a position that is not a sentinel.
         let mut moved = records.clone();
         let last = moved.len() - packed::RECORD_BYTES;
