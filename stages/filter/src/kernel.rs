@@ -17,6 +17,38 @@ use spikeyard_contract::noise::RunningMedian;
 use spikeyard_contract::recording::Frames;
 use std::sync::Arc;
 
+/// The body of a method that calls `$this.$method(args)`, an
+/// `#[inline(always)]` method of `$ty`, in a copy built for AVX-512 or AVX2
+/// when the CPU has them (chosen at run time; the build itself targets any
+/// x86-64), else as built. The operations and their order are the same in
+/// every copy (no fused multiply-add), so the results are identical; the
+/// tests compare the copies.
+macro_rules! wide_build {
+    ($ty:ty, $this:ident.$method:ident($($arg:ident: $arg_ty:ty),*) -> $ret:ty) => {{
+        #[cfg(target_arch = "x86_64")]
+        {
+            #[target_feature(enable = "avx512f")]
+            unsafe fn avx512(this: &$ty, $($arg: $arg_ty),*) -> $ret {
+                this.$method($($arg),*)
+            }
+            #[target_feature(enable = "avx2")]
+            unsafe fn avx2(this: &$ty, $($arg: $arg_ty),*) -> $ret {
+                this.$method($($arg),*)
+            }
+            if std::is_x86_feature_detected!("avx512f") {
+                // SAFETY: the CPU supports AVX-512F, checked just above.
+                return unsafe { avx512($this, $($arg),*) };
+            }
+            if std::is_x86_feature_detected!("avx2") {
+                // SAFETY: the CPU supports AVX2, checked just above.
+                return unsafe { avx2($this, $($arg),*) };
+            }
+        }
+        $this.$method($($arg),*)
+    }};
+}
+pub(crate) use wide_build;
+
 /// Decay of the slowest band-pass pole that sets chunk margins. A margin is
 /// twice the frames that pole needs to fall to this, so the transient left
 /// at a chunk's core is about its square (1e-8) of the signal at the seam or
@@ -127,36 +159,13 @@ impl FilterEngine {
     /// rows (`after`) of odd extension, all filtered (unused lanes 0). Each frame is converted
     /// as the forward pass reaches it, so the rows are written once before
     /// the backward pass instead of once more by a separate copy.
-    ///
-    /// On x86-64 machines with AVX-512 or AVX2 the same code is compiled for
-    /// 16- or 8-wide registers and chosen at run time (the build itself
-    /// targets any x86-64); the operations and their order are the same (no
-    /// fused multiply-add), so the results are identical.
+    /// Built for AVX-512 or AVX2 when the CPU has them (`wide_build!`), with
+    /// identical results.
     pub fn filter_block(&self, frames: &Frames, n_channels: usize, first: usize, before: usize, rows: &mut [Lanes]) {
-        #[cfg(target_arch = "x86_64")]
-        {
-            if std::is_x86_feature_detected!("avx512f") {
-                // SAFETY: the CPU supports AVX-512F, checked just above.
-                return unsafe { self.filter_block_avx512(frames, n_channels, first, before, rows) };
-            }
-            if std::is_x86_feature_detected!("avx2") {
-                // SAFETY: the CPU supports AVX2, checked just above.
-                return unsafe { self.filter_block_avx2(frames, n_channels, first, before, rows) };
-            }
-        }
-        self.filter_block_portable(frames, n_channels, first, before, rows);
-    }
-
-    #[cfg(target_arch = "x86_64")]
-    #[target_feature(enable = "avx512f")]
-    unsafe fn filter_block_avx512(&self, f: &Frames, n: usize, first: usize, before: usize, rows: &mut [Lanes]) {
-        self.filter_block_portable(f, n, first, before, rows);
-    }
-
-    #[cfg(target_arch = "x86_64")]
-    #[target_feature(enable = "avx2")]
-    unsafe fn filter_block_avx2(&self, f: &Frames, n: usize, first: usize, before: usize, rows: &mut [Lanes]) {
-        self.filter_block_portable(f, n, first, before, rows);
+        wide_build!(
+            FilterEngine,
+            self.filter_block_portable(frames: &Frames, n_channels: usize, first: usize, before: usize, rows: &mut [Lanes]) -> ()
+        )
     }
 
     #[inline(always)]

@@ -120,46 +120,13 @@ impl FrameEncoding<'_> {
     const TILE_FRAMES: usize = 128;
 
     /// Frames `first..` of the core into `out`, as many as it holds; returns
-    /// how many samples were clipped. On x86-64 machines with AVX-512 or
-    /// AVX2 the same code is compiled for wider registers and chosen at run
-    /// time, with the same bytes out.
+    /// how many samples were clipped. Built for AVX-512 or AVX2 when the CPU
+    /// has them (`kernel::wide_build!`), with the same bytes out.
     fn encode(&self, first: usize, out: &mut [u8], tile: &mut Vec<f32>, scratch: &mut ReferenceScratch) -> u64 {
-        #[cfg(target_arch = "x86_64")]
-        {
-            if std::is_x86_feature_detected!("avx512f") {
-                // SAFETY: the CPU supports AVX-512F, checked just above.
-                return unsafe { self.encode_avx512(first, out, tile, scratch) };
-            }
-            if std::is_x86_feature_detected!("avx2") {
-                // SAFETY: the CPU supports AVX2, checked just above.
-                return unsafe { self.encode_avx2(first, out, tile, scratch) };
-            }
-        }
-        self.encode_portable(first, out, tile, scratch)
-    }
-
-    #[cfg(target_arch = "x86_64")]
-    #[target_feature(enable = "avx512f")]
-    unsafe fn encode_avx512(
-        &self,
-        first: usize,
-        out: &mut [u8],
-        tile: &mut Vec<f32>,
-        scratch: &mut ReferenceScratch,
-    ) -> u64 {
-        self.encode_portable(first, out, tile, scratch)
-    }
-
-    #[cfg(target_arch = "x86_64")]
-    #[target_feature(enable = "avx2")]
-    unsafe fn encode_avx2(
-        &self,
-        first: usize,
-        out: &mut [u8],
-        tile: &mut Vec<f32>,
-        scratch: &mut ReferenceScratch,
-    ) -> u64 {
-        self.encode_portable(first, out, tile, scratch)
+        kernel::wide_build!(
+            FrameEncoding<'_>,
+            self.encode_portable(first: usize, out: &mut [u8], tile: &mut Vec<f32>, scratch: &mut ReferenceScratch) -> u64
+        )
     }
 
     #[inline(always)]
