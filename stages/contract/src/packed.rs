@@ -215,7 +215,13 @@ impl PackedRange<'_> {
     /// every byte widened (vectorized), then the tile's sentinels, found by
     /// a mask, given their records' values.
     pub fn decode(&self, start: usize, out: &mut [u8]) {
-        let mut next: Option<usize> = None;
+        self.decode_from(start, out, &mut None);
+    }
+
+    /// [`PackedRange::decode`] that carries the record cursor from one call
+    /// to the next (start with None), for a range decoded piece by piece.
+    #[inline]
+    pub fn decode_from(&self, start: usize, out: &mut [u8], next: &mut Option<usize>) {
         let bytes = &self.bytes[start..start + out.len() / 2];
         for (t, (tile, out)) in bytes.chunks(TILE).zip(out.chunks_mut(2 * TILE)).enumerate() {
             for (o, &b) in out.chunks_exact_mut(2).zip(tile) {
@@ -225,7 +231,7 @@ impl PackedRange<'_> {
             while sentinels != 0 {
                 let l = sentinels.trailing_zeros() as usize;
                 sentinels &= sentinels - 1;
-                let found = self.next_record(&mut next, start + t * TILE + l);
+                let found = self.next_record(next, start + t * TILE + l);
                 out[2 * l..2 * l + 2].copy_from_slice(&found.map_or(0, |r| record(self.records, r).1).to_le_bytes());
             }
         }

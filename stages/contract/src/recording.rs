@@ -662,8 +662,11 @@ impl Frames<'_> {
                     *s += i16_microvolts(b, gain, offset) as f64;
                 }
             }
-            Frames::Packed { range, gain, offset } => range
-                .for_each(start, sums.len(), |k, v| sums[k] += i16_microvolts(&v.to_le_bytes(), gain, offset) as f64),
+            Frames::Packed { range, gain, offset } => {
+                in_plain_pieces(range, gain, offset, start, sums.len(), |k, plain| {
+                    plain.add_to(0, &mut sums[k..k + plain.len()])
+                })
+            }
         }
     }
 }
@@ -672,7 +675,30 @@ impl Frames<'_> {
 /// plain arms stay small enough to inline into the callers' loops.
 #[inline(never)]
 fn copy_packed(range: PackedRange, gain: f64, offset: f64, start: usize, out: &mut [f32]) {
-    range.for_each(start, out.len(), |k, v| out[k] = i16_microvolts(&v.to_le_bytes(), gain, offset))
+    in_plain_pieces(range, gain, offset, start, out.len(), |k, plain| plain.copy_to(0, &mut out[k..k + plain.len()]))
+}
+
+/// The packed values at `start..start + count`, decoded a piece of 64 at a
+/// time into a buffer on the stack (vectorized, see
+/// [`PackedRange::decode`]) and handed to `each(offset, piece)` as plain
+/// i16 frames, whose arms of [`Frames::copy_to`] and [`Frames::add_to`]
+/// then run as for a plain file.
+#[inline]
+fn in_plain_pieces(
+    range: PackedRange,
+    gain: f64,
+    offset: f64,
+    start: usize,
+    count: usize,
+    mut each: impl FnMut(usize, Frames),
+) {
+    const PIECE: usize = 64;
+    let (mut buffer, mut next) = ([0u8; 2 * PIECE], None);
+    for done in (0..count).step_by(PIECE) {
+        let bytes = &mut buffer[..2 * PIECE.min(count - done)];
+        range.decode_from(start + done, bytes, &mut next);
+        each(done, Frames::StoredI16 { bytes, gain, offset });
+    }
 }
 
 /// The smallest stored i16 value whose µV (as [`Recording::read_frames`]
