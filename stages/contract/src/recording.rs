@@ -345,11 +345,10 @@ impl Recording {
             use rayon::prelude::*;
             const SAMPLES_PER_TASK: usize = 1 << 16;
             return self.visit_packed(start, end, |range| {
-                out.par_chunks_mut(SAMPLES_PER_TASK).enumerate().for_each(|(task, out)| {
-                    range.for_each(task * SAMPLES_PER_TASK, out.len(), |k, v| {
-                        out[k] = i16_microvolts(&v.to_le_bytes(), gain, offset)
-                    })
-                })
+                let frames = Frames::Packed { range, gain, offset };
+                out.par_chunks_mut(SAMPLES_PER_TASK)
+                    .enumerate()
+                    .for_each(|(task, out)| frames.copy_to(task * SAMPLES_PER_TASK, out))
             });
         }
         if self.dtype == Dtype::F32 && gain == 1.0 && offset == 0.0 && self.layout == Layout::TimeMajor {

@@ -63,13 +63,12 @@ pub fn find_crossings(
             .enumerate()
             .for_each(|(task, out)| range.decode(task * VALUES_PER_TASK, out));
         let frames = Frames::StoredI16 { bytes: &bytes, gain, offset };
-        let (thresholds, polarity) = (thresholds_uv, polarity);
         find_crossings(
             frames,
             n_channels,
             first_frame,
             core,
-            thresholds,
+            thresholds_uv,
             polarity,
             peak_frames,
             dead_frames,
@@ -91,17 +90,14 @@ pub fn find_crossings(
         let high: Vec<f32> = thresholds_uv.iter().map(|&t| next_up(t)).collect();
         scan.run(&low, &high, |k| values[k * n_channels..(k + 1) * n_channels].iter().copied())
     };
-    // "Below −t" is "stored below the first value at or above −t"; "above
-    // t" is "stored at or above the first value above t".
-    let stored_bounds = |gain: f64, offset: f64| -> (Vec<i32>, Vec<i32>) {
-        thresholds_uv
-            .iter()
-            .map(|&t| (i16_first_where(gain, offset, |v| v >= -t), i16_first_where(gain, offset, |v| v > t)))
-            .unzip()
-    };
     let crossings = match frames {
         Frames::StoredI16 { bytes, gain, offset } if gain > 0.0 => {
-            let (low, high) = stored_bounds(gain, offset);
+            // "Below −t" is "stored below the first value at or above −t";
+            // "above t" is "stored at or above the first value above t".
+            let (low, high): (Vec<i32>, Vec<i32>) = thresholds_uv
+                .iter()
+                .map(|&t| (i16_first_where(gain, offset, |v| v >= -t), i16_first_where(gain, offset, |v| v > t)))
+                .unzip();
             scan.run(&low, &high, |k| {
                 bytes[2 * k * n_channels..2 * (k + 1) * n_channels]
                     .chunks_exact(2)

@@ -156,9 +156,11 @@ impl FilterEngine {
     /// computation as [`FilterEngine::filter_channel`] on each lane, for
     /// channels `first..` of time-major `frames` (`n_channels` wide). `rows`
     /// gets `before` rows of odd extension, the frames, and the rest of its
-    /// rows (`after`) of odd extension, all filtered (unused lanes 0). Each frame is converted
-    /// as the forward pass reaches it, so the rows are written once before
-    /// the backward pass instead of once more by a separate copy.
+    /// rows (`after`) of odd extension, all filtered (unused lanes 0). Each
+    /// frame is converted as the forward pass reaches it, so the rows are
+    /// written once before the backward pass instead of once more by a
+    /// separate copy.
+    ///
     /// Built for AVX-512 or AVX2 when the CPU has them (`wide_build!`), with
     /// identical results.
     pub fn filter_block(&self, frames: &Frames, n_channels: usize, first: usize, before: usize, rows: &mut [Lanes]) {
