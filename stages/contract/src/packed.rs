@@ -170,33 +170,6 @@ impl PackedRange<'_> {
         self.record_of(index).map_or(0, |k| record(self.records, k).1)
     }
 
-    /// The stored values at `start..start + count` in turn to `put(k, value)`
-    /// (k from 0): the first sentinel's record by a search, then the next
-    /// record for each next sentinel, each checked against its position.
-    #[inline]
-    pub fn for_each(&self, start: usize, count: usize, mut put: impl FnMut(usize, i16)) {
-        let mut next: Option<usize> = None;
-        for (t, tile) in self.bytes[start..start + count].chunks(TILE).enumerate() {
-            let sentinels = sentinel_mask(tile);
-            if sentinels == 0 {
-                // The common tile: no branch per value.
-                for (l, &byte) in tile.iter().enumerate() {
-                    put(t * TILE + l, byte as i8 as i16);
-                }
-                continue;
-            }
-            for (l, &byte) in tile.iter().enumerate() {
-                let k = t * TILE + l;
-                if sentinels & (1 << l) == 0 {
-                    put(k, byte as i8 as i16);
-                } else {
-                    let found = self.next_record(&mut next, start + k);
-                    put(k, found.map_or(0, |r| record(self.records, r).1));
-                }
-            }
-        }
-    }
-
     /// The record of the sentinel at `index`: `next` (the one after the
     /// previous sentinel's) when it fits, else by a search; `next` moves on.
     #[inline]
@@ -210,18 +183,31 @@ impl PackedRange<'_> {
     }
 
     /// The stored values at `start..start + out.len() / 2` into `out` as
-    /// i16 little-endian (the layout of plain i16 data), as
-    /// [`PackedRange::for_each`] gives them but a tile of 64 at a time:
-    /// every byte widened (vectorized), then the tile's sentinels, found by
-    /// a mask, given their records' values.
+    /// i16 little-endian (the layout of plain i16 data), a tile of 64 at a
+    /// time: every byte widened (vectorized), then the tile's sentinels,
+    /// found by a mask, given their records' values (the first by a search,
+    /// each next one the record after, checked against its position).
     pub fn decode(&self, start: usize, out: &mut [u8]) {
         self.decode_from(start, out, &mut None);
     }
 
-    /// [`PackedRange::decode`] that carries the record cursor from one call
-    /// to the next (start with None), for a range decoded piece by piece.
+    /// The stored values at `start..start + count`, decoded a piece of 64 at
+    /// a time into a buffer on the stack and handed to `each(offset, bytes)`
+    /// as i16 little-endian, the record cursor carried from piece to piece.
     #[inline]
-    pub fn decode_from(&self, start: usize, out: &mut [u8], next: &mut Option<usize>) {
+    pub fn in_pieces(&self, start: usize, count: usize, mut each: impl FnMut(usize, &[u8])) {
+        const PIECE: usize = 64;
+        let (mut buffer, mut next) = ([0u8; 2 * PIECE], None);
+        for done in (0..count).step_by(PIECE) {
+            let bytes = &mut buffer[..2 * PIECE.min(count - done)];
+            self.decode_from(start + done, bytes, &mut next);
+            each(done, bytes);
+        }
+    }
+
+    /// [`PackedRange::decode`] with the record cursor given (None to start).
+    #[inline]
+    fn decode_from(&self, start: usize, out: &mut [u8], next: &mut Option<usize>) {
         let bytes = &self.bytes[start..start + out.len() / 2];
         for (t, (tile, out)) in bytes.chunks(TILE).zip(out.chunks_mut(2 * TILE)).enumerate() {
             for (o, &b) in out.chunks_exact_mut(2).zip(tile) {
@@ -318,7 +304,11 @@ mod tests {
         let range = PackedRange { bytes, records, starts: &starts, first: start, missing: &missing };
         let by_value: Vec<i16> = (0..range.len()).map(|k| range.value(k)).collect();
         let mut walked = vec![0; range.len()];
-        range.for_each(0, range.len(), |k, v| walked[k] = v);
+        range.in_pieces(0, range.len(), |k, bytes| {
+            for (j, b) in bytes.chunks_exact(2).enumerate() {
+                walked[k + j] = i16::from_le_bytes([b[0], b[1]]);
+            }
+        });
         // Decoded from a point inside the first tile on, too.
         let skip = range.len().min(3);
         let mut decoded = vec![0; 2 * (range.len() - skip)];

@@ -525,8 +525,13 @@ impl Recording {
             return Ok(());
         }
         if self.packed.is_some() {
-            return self
-                .visit_packed(start, end, |range| range.for_each(0, range.len(), |k, v| put(k, &v.to_le_bytes())));
+            return self.visit_packed(start, end, |range| {
+                range.in_pieces(0, range.len(), |k, bytes| {
+                    for (j, value) in bytes.chunks_exact(2).enumerate() {
+                        put(k + j, value);
+                    }
+                })
+            });
         }
         let item = self.dtype.bytes();
         match self.layout {
@@ -661,43 +666,22 @@ impl Frames<'_> {
                     *s += i16_microvolts(b, gain, offset) as f64;
                 }
             }
-            Frames::Packed { range, gain, offset } => {
-                in_plain_pieces(range, gain, offset, start, sums.len(), |k, plain| {
-                    plain.add_to(0, &mut sums[k..k + plain.len()])
-                })
-            }
+            Frames::Packed { range, gain, offset } => range.in_pieces(start, sums.len(), |k, bytes| {
+                Frames::StoredI16 { bytes, gain, offset }.add_to(0, &mut sums[k..k + bytes.len() / 2])
+            }),
         }
     }
 }
 
-/// [`Frames::copy_to`] for packed frames, kept out of line so that the
-/// plain arms stay small enough to inline into the callers' loops.
+/// [`Frames::copy_to`] for packed frames: decoded piece by piece
+/// ([`PackedRange::in_pieces`]) and copied by the plain i16 arm; kept out of
+/// line so that the plain arms stay small enough to inline into the
+/// callers' loops.
 #[inline(never)]
 fn copy_packed(range: PackedRange, gain: f64, offset: f64, start: usize, out: &mut [f32]) {
-    in_plain_pieces(range, gain, offset, start, out.len(), |k, plain| plain.copy_to(0, &mut out[k..k + plain.len()]))
-}
-
-/// The packed values at `start..start + count`, decoded a piece of 64 at a
-/// time into a buffer on the stack (vectorized, see
-/// [`PackedRange::decode`]) and handed to `each(offset, piece)` as plain
-/// i16 frames, whose arms of [`Frames::copy_to`] and [`Frames::add_to`]
-/// then run as for a plain file.
-#[inline]
-fn in_plain_pieces(
-    range: PackedRange,
-    gain: f64,
-    offset: f64,
-    start: usize,
-    count: usize,
-    mut each: impl FnMut(usize, Frames),
-) {
-    const PIECE: usize = 64;
-    let (mut buffer, mut next) = ([0u8; 2 * PIECE], None);
-    for done in (0..count).step_by(PIECE) {
-        let bytes = &mut buffer[..2 * PIECE.min(count - done)];
-        range.decode_from(start + done, bytes, &mut next);
-        each(done, Frames::StoredI16 { bytes, gain, offset });
-    }
+    range.in_pieces(start, out.len(), |k, bytes| {
+        Frames::StoredI16 { bytes, gain, offset }.copy_to(0, &mut out[k..k + bytes.len() / 2])
+    })
 }
 
 /// The smallest stored i16 value whose µV (as [`Recording::read_frames`]
