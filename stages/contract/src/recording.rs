@@ -651,6 +651,30 @@ impl Frames<'_> {
         }
     }
 
+    /// Ask the CPU to start loading the cache line holding position
+    /// `start`, when it lies inside the frames (a hint only: no effect on
+    /// results, none on CPUs without a prefetch instruction). For readers that
+    /// stride across frames one block of channels at a time, whose lines the
+    /// hardware prefetchers do not follow across pages.
+    #[inline(always)]
+    pub fn prefetch(&self, start: usize) {
+        #[cfg(target_arch = "x86_64")]
+        {
+            let address = match *self {
+                Frames::Microvolts(values) => values.get(start).map(|v| v as *const f32 as *const i8),
+                Frames::StoredI16 { bytes, .. } => bytes.get(2 * start).map(|b| b as *const u8 as *const i8),
+                Frames::Packed { .. } => None,
+            };
+            if let Some(address) = address {
+                // SAFETY: SSE is part of x86_64; a prefetch never faults and
+                // the address is inside a live slice.
+                unsafe { std::arch::x86_64::_mm_prefetch::<{ std::arch::x86_64::_MM_HINT_T0 }>(address) }
+            }
+        }
+        #[cfg(not(target_arch = "x86_64"))]
+        let _ = start;
+    }
+
     /// Add the values at positions `start..start + sums.len()` to `sums`.
     #[inline]
     pub fn add_to(&self, start: usize, sums: &mut [f64]) {
