@@ -221,13 +221,14 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     let probability = (valid.fit_events as f64 / n_events.max(1) as f64).min(1.0);
     let mut fit_rows: Vec<Vec<f64>> = Vec::new();
     for_each_event_window(&recording, &mut events, &events_path, valid.chunk_frames, margin, |window| {
-        for event in window
+        // In parallel, collected in event order (the same rows whatever the threads).
+        let kept: Vec<Vec<Vec<f64>>> = window
             .events
-            .iter()
+            .par_iter()
             .filter(|e| spikeyard_contract::sampling::keep(request.seed, SALT_PCA_FIT, e.index, probability))
-        {
-            fit_rows.extend(extractor.snippets(window, event).1);
-        }
+            .map(|event| extractor.snippets(window, event).1)
+            .collect();
+        fit_rows.extend(kept.into_iter().flatten());
         Ok::<(), StageFailure>(())
     })?;
     let width = valid.n_components * valid.max_channels;
