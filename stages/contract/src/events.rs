@@ -109,6 +109,14 @@ impl EventWindow<'_> {
     pub fn add_row(&self, frame: i64, sums: &mut [f64]) {
         self.frames.add_to(self.local(frame) * sums.len(), sums);
     }
+
+    /// [`EventWindow::add_row`] in stored numbers ([`Frames::add_stored_to`]);
+    /// false, adding nothing, when the frames are µV.
+    #[must_use]
+    #[inline]
+    pub fn add_stored_row(&self, frame: i64, sums: &mut [i64]) -> bool {
+        self.frames.add_stored_to(self.local(frame) * sums.len(), sums)
+    }
 }
 
 /// Walk the recording chunk by chunk (cores of `chunk_frames`, reads

@@ -407,6 +407,15 @@ impl Recording {
         Ok(visit(Frames::Microvolts(scratch)))
     }
 
+    /// The gain and offset (µV = (stored − offset) × gain) when
+    /// [`Recording::visit_frames`] hands over stored i16 numbers (plain or
+    /// packed), which [`Frames::add_stored_to`] can sum exactly; `None` when
+    /// it hands over µV.
+    pub fn stored_i16_scale(&self) -> Option<(f64, f64)> {
+        (self.packed.is_some() || (self.dtype == Dtype::I16 && self.layout == Layout::TimeMajor))
+            .then_some((self.microvolts_per_unit, self.offset))
+    }
+
     /// Read frames `start..end` as the stored numbers (no gain, no offset),
     /// time-major, for checks of the stored range.
     ///
@@ -649,6 +658,30 @@ impl Frames<'_> {
             }
             Frames::Packed { range, gain, offset } => copy_packed(range, gain, offset, start, out),
         }
+    }
+
+    /// Add the stored i16 numbers (no gain, no offset) at positions
+    /// `start..start + sums.len()` to `sums`: exact integer sums, scaled to
+    /// µV once by the caller ([`Recording::stored_i16_scale`]). Returns false,
+    /// adding nothing, for frames handed over as µV.
+    #[must_use]
+    #[inline]
+    pub fn add_stored_to(&self, start: usize, sums: &mut [i64]) -> bool {
+        let end = start + sums.len();
+        match *self {
+            Frames::Microvolts(_) => return false,
+            Frames::StoredI16 { bytes, .. } => {
+                for (s, b) in sums.iter_mut().zip(bytes[2 * start..2 * end].chunks_exact(2)) {
+                    *s += i64::from(i16::from_le_bytes([b[0], b[1]]));
+                }
+            }
+            Frames::Packed { range, .. } => range.in_pieces(start, sums.len(), |k, bytes| {
+                for (s, b) in sums[k..k + bytes.len() / 2].iter_mut().zip(bytes.chunks_exact(2)) {
+                    *s += i64::from(i16::from_le_bytes([b[0], b[1]]));
+                }
+            }),
+        }
+        true
     }
 
     /// Ask the CPU to start loading the cache line holding position
@@ -1260,16 +1293,22 @@ mod layout_tests {
                 assert_eq!(recording.n_frames, 2);
                 assert_eq!(frames(&recording, 0, 2), expected, "{dtype} {layout}");
                 assert_eq!(frames(&recording, 1, 2), expected[3..].to_vec(), "{dtype} {layout}");
-                // Value by value (converted where looked at for i16), and rows added.
-                let (values, sums) = recording
+                // Value by value (converted where looked at for i16), and rows
+                // added: in µV, and as stored numbers exactly when the frames
+                // are handed over as stored i16.
+                let (values, sums, stored) = recording
                     .visit_frames(1, 2, &mut Vec::new(), |f| {
-                        let mut sums = vec![10.0f64; 3];
+                        let (mut sums, mut stored) = (vec![10.0f64; 3], vec![10i64; 3]);
                         f.add_to(0, &mut sums);
-                        ((0..3).map(|i| f.get(i)).collect::<Vec<f32>>(), sums)
+                        let added = f.add_stored_to(0, &mut stored);
+                        ((0..3).map(|i| f.get(i)).collect::<Vec<f32>>(), sums, added.then_some(stored))
                     })
                     .unwrap();
                 assert_eq!(values, expected[3..].to_vec(), "{dtype} {layout}");
                 assert_eq!(sums, [12.0, 12.5, 13.0], "{dtype} {layout}");
+                let stores_i16 = dtype == "i16" && layout == "time-major";
+                assert_eq!(stored, stores_i16.then_some(vec![14, 15, 16]), "{dtype} {layout}");
+                assert_eq!(recording.stored_i16_scale(), stores_i16.then_some((0.5, 0.0)), "{dtype} {layout}");
             }
         }
     }
@@ -1441,12 +1480,16 @@ mod transpose_tests {
                 f.copy_to(0, &mut copied);
                 let mut sums = vec![1.0f64; n_channels.min(f.len())];
                 f.add_to(f.len() - sums.len(), &mut sums);
-                (values, copied, sums)
+                let mut stored = vec![-3i64; f.len()];
+                assert!(f.add_stored_to(0, &mut stored));
+                (values, copied, sums, stored)
             };
             let a = plain.visit_frames(start, end, &mut Vec::new(), look).unwrap();
             let b = packed.visit_frames(start, end, &mut Vec::new(), look).unwrap();
             assert_eq!(a, b, "visit_frames {start}..{end}");
             assert_eq!(a.0, a.1);
+            let stored_plus_3: Vec<f64> = a.3.iter().map(|&s| (s + 3) as f64).collect();
+            assert_eq!(stored_plus_3, sa, "add_stored_to {start}..{end}");
         }
     }
 

@@ -38,7 +38,7 @@ use arrow_schema::{DataType, Field, Schema};
 use fit::Node;
 use params::PropagationParams;
 use rayon::prelude::*;
-use spikeyard_contract::events::{for_each_event_window, EventRecord};
+use spikeyard_contract::events::{for_each_event_window, EventRecord, EventWindow};
 use spikeyard_contract::runs::group_runs;
 use spikeyard_contract::sampling::uniform;
 use spikeyard_contract::table::{column, read_table, write_table};
@@ -79,8 +79,14 @@ pub fn footprints(
     let after = (params.after_ms * 1e-3 * fs).round() as usize;
     let length = before + after + 1;
     let n_channels = recording.n_channels;
-    // Per unit, frame-major: sums[unit][k * n_channels + channel].
-    let mut sums = vec![vec![0.0f64; n_channels * length]; n_units];
+    // Per unit, frame-major: sums[unit][k * n_channels + channel]. Frames
+    // stored as i16 (the filtered copy) are summed exactly as the stored
+    // numbers, several times cheaper than converting each to µV, and scaled
+    // once at the end; other frames are summed in µV.
+    let scale = recording.stored_i16_scale();
+    let size = |wanted: bool| if wanted { n_channels * length } else { 0 };
+    let mut stored_sums = vec![vec![0i64; size(scale.is_some())]; n_units];
+    let mut sums = vec![vec![0.0f64; size(scale.is_none())]; n_units];
     let mut counts = vec![0usize; n_units];
     let events = spikes
         .iter()
@@ -91,22 +97,21 @@ pub fn footprints(
         for event in window.events {
             counts[spikes[event.index as usize].0] += 1;
         }
-        // In parallel over runs of offsets k: each run adds its rows of every
-        // unit's sum, spike after spike in order (the same additions in the
-        // same order whatever the thread count).
-        const ROWS_PER_TASK: usize = 8;
-        let runs = group_runs(sums.iter_mut().map(Vec::as_mut_slice), ROWS_PER_TASK * n_channels);
-        runs.into_par_iter().enumerate().for_each(|(task, mut rows)| {
-            for event in window.events {
-                let rows = &mut rows[spikes[event.index as usize].0];
-                for (j, row) in rows.chunks_exact_mut(n_channels).enumerate() {
-                    let frame = event.sample as i64 - before as i64 + (task * ROWS_PER_TASK + j) as i64;
-                    window.add_row(frame, row);
-                }
-            }
-        });
+        if scale.is_some() {
+            add_spike_rows(&mut stored_sums, window, spikes, before, n_channels, |frame, row| {
+                let added = window.add_stored_row(frame, row);
+                debug_assert!(added, "stored_i16_scale promised stored numbers");
+            });
+        } else {
+            add_spike_rows(&mut sums, window, spikes, before, n_channels, |frame, row| window.add_row(frame, row));
+        }
         Ok::<(), StageFailure>(())
     })?;
+    if let Some((gain, offset)) = scale {
+        for ((sum, stored), &n) in sums.iter_mut().zip(&stored_sums).zip(&counts) {
+            *sum = stored.iter().map(|&s| (s as f64 - n as f64 * offset) * gain).collect();
+        }
+    }
     Ok(sums
         .into_iter()
         .zip(counts)
@@ -125,6 +130,30 @@ pub fn footprints(
             Footprint { n_spikes: n, electrodes }
         })
         .collect())
+}
+
+/// Add each spike's rows of a window (frames `sample − before ..` on every
+/// channel) to its unit's sums, in parallel over runs of offsets: each run
+/// adds its rows of every unit's sum, spike after spike in order (the same
+/// additions in the same order whatever the thread count).
+fn add_spike_rows<T: Send>(
+    sums: &mut [Vec<T>],
+    window: &EventWindow,
+    spikes: &[(usize, u64)],
+    before: usize,
+    n_channels: usize,
+    add_row: impl Fn(i64, &mut [T]) + Sync,
+) {
+    const ROWS_PER_TASK: usize = 8;
+    let runs = group_runs(sums.iter_mut().map(Vec::as_mut_slice), ROWS_PER_TASK * n_channels);
+    runs.into_par_iter().enumerate().for_each(|(task, mut rows)| {
+        for event in window.events {
+            let rows = &mut rows[spikes[event.index as usize].0];
+            for (j, row) in rows.chunks_exact_mut(n_channels).enumerate() {
+                add_row(event.sample as i64 - before as i64 + (task * ROWS_PER_TASK + j) as i64, row);
+            }
+        }
+    });
 }
 
 /// The trough of a waveform: its position in samples, refined by a
