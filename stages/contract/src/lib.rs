@@ -40,3 +40,35 @@ pub use error::{ContractError, RecordingError};
 pub use recording::{Chunk, Dtype, Electrode, Layout, Recording};
 pub use request::{ProgressReporter, StageReport, StageRequest};
 pub use stage_main::{stage_main, StageFailure};
+
+/// The body of a method that calls `$this.$method(args)`, an
+/// `#[inline(always)]` method of `$ty`, in a copy built for AVX-512 or AVX2
+/// when the CPU has them (chosen at run time; the build itself targets any
+/// x86-64), else as built. The operations and their order are the same in
+/// every copy (no fused multiply-add), so the results are identical; the
+/// tests compare the copies.
+#[macro_export]
+macro_rules! wide_build {
+    ($ty:ty, $this:ident.$method:ident($($arg:ident: $arg_ty:ty),*) -> $ret:ty) => {{
+        #[cfg(target_arch = "x86_64")]
+        {
+            #[target_feature(enable = "avx512f")]
+            unsafe fn avx512(this: &$ty, $($arg: $arg_ty),*) -> $ret {
+                this.$method($($arg),*)
+            }
+            #[target_feature(enable = "avx2")]
+            unsafe fn avx2(this: &$ty, $($arg: $arg_ty),*) -> $ret {
+                this.$method($($arg),*)
+            }
+            if std::is_x86_feature_detected!("avx512f") {
+                // SAFETY: the CPU supports AVX-512F, checked just above.
+                return unsafe { avx512($this, $($arg),*) };
+            }
+            if std::is_x86_feature_detected!("avx2") {
+                // SAFETY: the CPU supports AVX2, checked just above.
+                return unsafe { avx2($this, $($arg),*) };
+            }
+        }
+        $this.$method($($arg),*)
+    }};
+}

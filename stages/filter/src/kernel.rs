@@ -15,39 +15,8 @@ use rustfft::num_complex::Complex64;
 use rustfft::{Fft, FftPlanner};
 use spikeyard_contract::noise::RunningMedian;
 use spikeyard_contract::recording::Frames;
+use spikeyard_contract::wide_build;
 use std::sync::Arc;
-
-/// The body of a method that calls `$this.$method(args)`, an
-/// `#[inline(always)]` method of `$ty`, in a copy built for AVX-512 or AVX2
-/// when the CPU has them (chosen at run time; the build itself targets any
-/// x86-64), else as built. The operations and their order are the same in
-/// every copy (no fused multiply-add), so the results are identical; the
-/// tests compare the copies.
-macro_rules! wide_build {
-    ($ty:ty, $this:ident.$method:ident($($arg:ident: $arg_ty:ty),*) -> $ret:ty) => {{
-        #[cfg(target_arch = "x86_64")]
-        {
-            #[target_feature(enable = "avx512f")]
-            unsafe fn avx512(this: &$ty, $($arg: $arg_ty),*) -> $ret {
-                this.$method($($arg),*)
-            }
-            #[target_feature(enable = "avx2")]
-            unsafe fn avx2(this: &$ty, $($arg: $arg_ty),*) -> $ret {
-                this.$method($($arg),*)
-            }
-            if std::is_x86_feature_detected!("avx512f") {
-                // SAFETY: the CPU supports AVX-512F, checked just above.
-                return unsafe { avx512($this, $($arg),*) };
-            }
-            if std::is_x86_feature_detected!("avx2") {
-                // SAFETY: the CPU supports AVX2, checked just above.
-                return unsafe { avx2($this, $($arg),*) };
-            }
-        }
-        $this.$method($($arg),*)
-    }};
-}
-pub(crate) use wide_build;
 
 /// Decay of the slowest band-pass pole that sets chunk margins. A margin is
 /// twice the frames that pole needs to fall to this, so the transient left

@@ -121,9 +121,9 @@ impl FrameEncoding<'_> {
 
     /// Frames `first..` of the core into `out`, as many as it holds; returns
     /// how many samples were clipped. Built for AVX-512 or AVX2 when the CPU
-    /// has them (`kernel::wide_build!`), with the same bytes out.
+    /// has them (`spikeyard_contract::wide_build!`), with the same bytes out.
     fn encode(&self, first: usize, out: &mut [u8], tile: &mut Vec<f32>, scratch: &mut ReferenceScratch) -> u64 {
-        kernel::wide_build!(
+        spikeyard_contract::wide_build!(
             FrameEncoding<'_>,
             self.encode_portable(first: usize, out: &mut [u8], tile: &mut Vec<f32>, scratch: &mut ReferenceScratch) -> u64
         )
