@@ -108,9 +108,12 @@ pub fn footprints(
         Ok::<(), StageFailure>(())
     })?;
     if let Some((gain, offset)) = scale {
-        for ((sum, stored), &n) in sums.iter_mut().zip(&stored_sums).zip(&counts) {
-            *sum = stored.iter().map(|&s| (s as f64 - n as f64 * offset) * gain).collect();
-        }
+        // Unit by unit, each unit's stored sums freed as its µV sums are made.
+        sums = stored_sums
+            .into_iter()
+            .zip(&counts)
+            .map(|(stored, &n)| stored.into_iter().map(|s| (s as f64 - n as f64 * offset) * gain).collect())
+            .collect();
     }
     Ok(sums
         .into_iter()
