@@ -667,19 +667,18 @@ impl Frames<'_> {
     #[must_use]
     #[inline]
     pub fn add_stored_to(&self, start: usize, sums: &mut [i64]) -> bool {
-        let end = start + sums.len();
+        // Little-endian i16 `bytes` added to `sums`, value by value.
+        fn add(bytes: &[u8], sums: &mut [i64]) {
+            for (s, b) in sums.iter_mut().zip(bytes.chunks_exact(2)) {
+                *s += i64::from(i16::from_le_bytes([b[0], b[1]]));
+            }
+        }
         match *self {
             Frames::Microvolts(_) => return false,
-            Frames::StoredI16 { bytes, .. } => {
-                for (s, b) in sums.iter_mut().zip(bytes[2 * start..2 * end].chunks_exact(2)) {
-                    *s += i64::from(i16::from_le_bytes([b[0], b[1]]));
-                }
+            Frames::StoredI16 { bytes, .. } => add(&bytes[2 * start..2 * (start + sums.len())], sums),
+            Frames::Packed { range, .. } => {
+                range.in_pieces(start, sums.len(), |k, bytes| add(bytes, &mut sums[k..k + bytes.len() / 2]))
             }
-            Frames::Packed { range, .. } => range.in_pieces(start, sums.len(), |k, bytes| {
-                for (s, b) in sums[k..k + bytes.len() / 2].iter_mut().zip(bytes.chunks_exact(2)) {
-                    *s += i64::from(i16::from_le_bytes([b[0], b[1]]));
-                }
-            }),
         }
         true
     }
