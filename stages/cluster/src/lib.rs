@@ -200,7 +200,10 @@ fn measure_templates(
         counts[s.unit as usize] += 1;
     }
     let length = params.template_before_frames + params.template_after_frames + 1;
-    let mut sums: Vec<Vec<Vec<f64>>> = unit_channels.iter().map(|c| vec![vec![0.0; length]; c.len()]).collect();
+    // Per unit, frame-major sums (frame k, then the unit's channels in order),
+    // and its channels as runs of consecutive numbers, each read in one go.
+    let mut sums: Vec<Vec<f64>> = unit_channels.iter().map(|c| vec![0.0; length * c.len()]).collect();
+    let runs: Vec<Vec<ChannelRun>> = unit_channels.iter().map(|c| channel_runs(c)).collect();
     let mut averaged = vec![0usize; n_units];
     let chosen_spikes = spikes.iter().enumerate().filter(|(i, s)| {
         let probability = params.template_spikes as f64 / counts[s.unit as usize].max(1) as f64;
@@ -211,18 +214,40 @@ fn measure_templates(
     });
     let margin = params.template_before_frames.max(params.template_after_frames) + 1;
     let n_channels = recording.n_channels;
+    let (mut starts, mut order) = (Vec::new(), Vec::new());
     for_each_event_window(recording, events, origin, params.chunk_frames, margin, |window| {
+        // The window's events grouped by unit, each group in event order.
         let unit_of = |event: &EventRecord| spikes[event.index as usize].unit as usize;
+        starts.clear();
+        starts.resize(n_units + 1, 0);
         for event in window.events {
-            averaged[unit_of(event)] += 1;
+            starts[unit_of(event) + 1] += 1;
+        }
+        for unit in 0..n_units {
+            averaged[unit] += starts[unit + 1];
+            starts[unit + 1] += starts[unit];
+        }
+        order.resize(window.events.len(), 0);
+        let mut next = starts.clone();
+        for (i, event) in window.events.iter().enumerate() {
+            order[next[unit_of(event)]] = i;
+            next[unit_of(event)] += 1;
         }
         // In parallel over units, each adding its own spikes in order.
-        sums.par_iter_mut().enumerate().for_each(|(unit, rows)| {
-            for event in window.events.iter().filter(|e| unit_of(e) == unit) {
-                for k in 0..length {
-                    let frame = event.sample as i64 - params.template_before_frames as i64 + k as i64;
-                    for (row, &channel) in rows.iter_mut().zip(&unit_channels[unit]) {
-                        row[k] += window.value(frame, channel, n_channels) as f64;
+        sums.par_iter_mut().zip(&runs).enumerate().for_each_init(Vec::new, |row, (unit, (sums, runs))| {
+            row.resize(sums.len() / length, 0.0f32);
+            if row.is_empty() {
+                return;
+            }
+            for &i in &order[starts[unit]..starts[unit + 1]] {
+                let first = window.events[i].sample as i64 - params.template_before_frames as i64;
+                for (k, sums) in sums.chunks_exact_mut(row.len()).enumerate() {
+                    for run in runs {
+                        let out = &mut row[run.position..run.position + run.len];
+                        window.copy_channels(first + k as i64, run.channel, n_channels, out);
+                    }
+                    for (s, v) in sums.iter_mut().zip(row.iter()) {
+                        *s += *v as f64;
                     }
                 }
             }
@@ -233,12 +258,34 @@ fn measure_templates(
         .into_iter()
         .zip(unit_channels)
         .zip(averaged)
-        .map(|((rows, channels), n)| Template {
+        .map(|((sums, channels), n)| Template {
             channels: channels.clone(),
-            values: rows.into_iter().map(|row| row.into_iter().map(|v| v / n.max(1) as f64).collect()).collect(),
+            values: (0..channels.len())
+                .map(|c| sums.iter().skip(c).step_by(channels.len()).map(|v| v / n.max(1) as f64).collect())
+                .collect(),
             n_averaged: n,
         })
         .collect())
+}
+
+/// Consecutive channel numbers in a unit's list of channels: the first
+/// channel, its position in the list, and how many follow on.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+struct ChannelRun {
+    channel: usize,
+    position: usize,
+    len: usize,
+}
+
+fn channel_runs(channels: &[usize]) -> Vec<ChannelRun> {
+    let mut runs: Vec<ChannelRun> = Vec::new();
+    for (position, &channel) in channels.iter().enumerate() {
+        match runs.last_mut() {
+            Some(run) if run.channel + run.len == channel => run.len += 1,
+            _ => runs.push(ChannelRun { channel, position, len: 1 }),
+        }
+    }
+    runs
 }
 
 /// Run the stage on a request.
@@ -485,4 +532,64 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     summary.insert("spikes".into(), spikes.len().into());
     summary.insert("duplicates_dropped".into(), duplicates.into());
     Ok(report)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use spikeyard_contract::testing::{write_f32_recording, TestRng};
+
+    #[test]
+    fn channel_runs_split_where_numbers_jump() {
+        let run = |channel, position, len| ChannelRun { channel, position, len };
+        assert_eq!(channel_runs(&[0, 1, 2, 5, 7, 8]), vec![run(0, 0, 3), run(5, 3, 1), run(7, 4, 2)]);
+        assert_eq!(channel_runs(&[4, 3]), vec![run(4, 0, 1), run(3, 1, 1)]);
+        assert!(channel_runs(&[]).is_empty());
+    }
+
+    // Templates read each unit's channels as runs, a frame at a time, in
+    // chunks; they must be the plain mean of the spikes' values, frame by
+    // frame and channel by channel, with frames past the recording's ends
+    // clamped to them, for spikes on both sides of chunk seams.
+    #[test]
+    fn templates_are_the_mean_of_each_units_spike_values() {
+        let dir = tempfile::tempdir().unwrap();
+        let (fs, n_channels, n_frames) = (10000.0, 9, 5000usize);
+        let mut rng = TestRng::new(3);
+        let samples: Vec<f32> = (0..n_frames * n_channels).map(|_| (10.0 * rng.normal()) as f32).collect();
+        let recording = Recording::open(&write_f32_recording(dir.path(), "r", fs, n_channels, 20.0, &samples)).unwrap();
+        let params =
+            ClusterParams { template_spikes: 1 << 20, chunk_seconds: 0.1, ..Default::default() }.check(fs).unwrap();
+        let spikes: Vec<Assigned> = [0, 5, 998, 999, 1000, 1003, 2500, 4990, 4999]
+            .iter()
+            .enumerate()
+            .map(|(i, &sample)| Assigned {
+                event: i as u64,
+                sample,
+                channel: 0,
+                unit: (i % 2) as u32,
+                amplitude_uv: 0.0,
+                x_um: 0.0,
+                y_um: 0.0,
+            })
+            .collect();
+        let unit_channels = vec![vec![0, 1, 2, 5, 7, 8], vec![4, 3]];
+        let templates = measure_templates(&recording, &spikes, 2, &unit_channels, &params, 1, Path::new("t")).unwrap();
+        let before = params.template_before_frames as i64;
+        let length = params.template_before_frames + params.template_after_frames + 1;
+        for (unit, template) in templates.iter().enumerate() {
+            let own: Vec<i64> = spikes.iter().filter(|s| s.unit as usize == unit).map(|s| s.sample as i64).collect();
+            assert_eq!(template.n_averaged, own.len());
+            assert_eq!(template.values.len(), unit_channels[unit].len());
+            for (row, &channel) in template.values.iter().zip(&unit_channels[unit]) {
+                assert_eq!(row.len(), length);
+                for (k, value) in row.iter().enumerate() {
+                    let at = |s: i64| (s - before + k as i64).clamp(0, n_frames as i64 - 1) as usize;
+                    let sum: f64 = own.iter().map(|&s| samples[at(s) * n_channels + channel] as f64).sum();
+                    let mean = sum / own.len() as f64;
+                    assert!((value - mean).abs() < 1e-9, "unit {unit} channel {channel} frame {k}: {value} vs {mean}");
+                }
+            }
+        }
+    }
 }

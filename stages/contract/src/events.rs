@@ -103,6 +103,14 @@ impl EventWindow<'_> {
         self.frames.get(self.local(frame) * n_channels + channel)
     }
 
+    /// Channels `first_channel..first_channel + out.len()` at absolute
+    /// `frame` (clamped to the frames held) into `out`, µV: the values
+    /// [`EventWindow::value`] gives, read as one run.
+    #[inline]
+    pub fn copy_channels(&self, frame: i64, first_channel: usize, n_channels: usize, out: &mut [f32]) {
+        self.frames.copy_to(self.local(frame) * n_channels + first_channel, out);
+    }
+
     /// Add every channel at absolute `frame` (clamped to the frames held)
     /// to `sums` (one per channel).
     #[inline]
