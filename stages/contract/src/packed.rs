@@ -208,17 +208,39 @@ impl PackedRange<'_> {
     /// [`PackedRange::decode`] with the record cursor given (None to start).
     #[inline]
     fn decode_from(&self, start: usize, out: &mut [u8], next: &mut Option<usize>) {
-        let bytes = &self.bytes[start..start + out.len() / 2];
-        for (t, (tile, out)) in bytes.chunks(TILE).zip(out.chunks_mut(2 * TILE)).enumerate() {
-            for (o, &b) in out.chunks_exact_mut(2).zip(tile) {
-                o.copy_from_slice(&(b as i8 as i16).to_le_bytes());
+        let (pairs, _) = out.as_chunks_mut::<2>();
+        self.visit_values(start, pairs, next, |o, b| *o = i16::from(b).to_le_bytes(), |o, v| *o = v.to_le_bytes());
+    }
+
+    /// Hand the stored values at `start..start + slots.len()` to `slots`, one
+    /// each, a tile of 64 at a time: `byte(slot, b)` for every byte as a
+    /// signed number (a loop the compiler can vectorize; a sentinel gives
+    /// −128), then `exception(slot, value)` for each of the tile's
+    /// sentinels, found by a mask, with its record's value (0 for a missing
+    /// record, which is noted). `next` is the record cursor: the first
+    /// sentinel's record is searched for, each next one is the record after,
+    /// checked against its position. Decoding, adding and converting share
+    /// this one walk, so none of them goes through a buffer.
+    #[inline(always)]
+    pub fn visit_values<T>(
+        &self,
+        start: usize,
+        slots: &mut [T],
+        next: &mut Option<usize>,
+        byte: impl Fn(&mut T, i8),
+        exception: impl Fn(&mut T, i16),
+    ) {
+        let bytes = &self.bytes[start..start + slots.len()];
+        for (t, (tile, slots)) in bytes.chunks(TILE).zip(slots.chunks_mut(TILE)).enumerate() {
+            for (slot, &b) in slots.iter_mut().zip(tile) {
+                byte(slot, b as i8);
             }
             let mut sentinels = sentinel_mask(tile);
             while sentinels != 0 {
                 let l = sentinels.trailing_zeros() as usize;
                 sentinels &= sentinels - 1;
                 let found = self.next_record(next, start + t * TILE + l);
-                out[2 * l..2 * l + 2].copy_from_slice(&found.map_or(0, |r| record(self.records, r).1).to_le_bytes());
+                exception(&mut slots[l], found.map_or(0, |r| record(self.records, r).1));
             }
         }
     }

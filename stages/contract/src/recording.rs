@@ -667,18 +667,22 @@ impl Frames<'_> {
     #[must_use]
     #[inline]
     pub fn add_stored_to(&self, start: usize, sums: &mut [i64]) -> bool {
-        // Little-endian i16 `bytes` added to `sums`, value by value.
-        fn add(bytes: &[u8], sums: &mut [i64]) {
-            for (s, b) in sums.iter_mut().zip(bytes.chunks_exact(2)) {
-                *s += i64::from(i16::from_le_bytes([b[0], b[1]]));
-            }
-        }
         match *self {
             Frames::Microvolts(_) => return false,
-            Frames::StoredI16 { bytes, .. } => add(&bytes[2 * start..2 * (start + sums.len())], sums),
-            Frames::Packed { range, .. } => {
-                range.in_pieces(start, sums.len(), |k, bytes| add(bytes, &mut sums[k..k + bytes.len() / 2]))
+            Frames::StoredI16 { bytes, .. } => {
+                let (values, _) = bytes[2 * start..2 * (start + sums.len())].as_chunks::<2>();
+                for (s, b) in sums.iter_mut().zip(values) {
+                    *s += i64::from(i16::from_le_bytes(*b));
+                }
             }
+            Frames::Packed { range, .. } => range.visit_values(
+                start,
+                sums,
+                &mut None,
+                |s, b| *s += i64::from(b),
+                // The sentinel's −128 was added: add the rest of the value.
+                |s, v| *s += i64::from(v) + 128,
+            ),
         }
         true
     }
@@ -729,15 +733,13 @@ impl Frames<'_> {
     }
 }
 
-/// [`Frames::copy_to`] for packed frames: decoded piece by piece
-/// ([`PackedRange::in_pieces`]) and copied by the plain i16 arm; kept out of
-/// line so that the plain arms stay small enough to inline into the
-/// callers' loops.
+/// [`Frames::copy_to`] for packed frames, converted as the plain i16 arm
+/// converts ([`PackedRange::visit_values`]); kept out of line so that the
+/// plain arms stay small enough to inline into the callers' loops.
 #[inline(never)]
 fn copy_packed(range: PackedRange, gain: f64, offset: f64, start: usize, out: &mut [f32]) {
-    range.in_pieces(start, out.len(), |k, bytes| {
-        Frames::StoredI16 { bytes, gain, offset }.copy_to(0, &mut out[k..k + bytes.len() / 2])
-    })
+    let microvolts = |stored: i16| stored_microvolts(stored, gain, offset);
+    range.visit_values(start, out, &mut None, |o, b| *o = microvolts(i16::from(b)), |o, v| *o = microvolts(v))
 }
 
 /// The smallest stored i16 value whose µV (as [`Recording::read_frames`]
@@ -763,7 +765,12 @@ pub fn i16_first_where(gain: f64, offset: f64, holds: impl Fn(f32) -> bool) -> i
 /// [`Dtype::decode`] followed by the offset and gain of [`Recording::read_frames`].
 #[inline(always)]
 fn i16_microvolts(bytes: &[u8], gain: f64, offset: f64) -> f32 {
-    ((i16::from_le_bytes([bytes[0], bytes[1]]) as f64 - offset) * gain) as f32
+    stored_microvolts(i16::from_le_bytes([bytes[0], bytes[1]]), gain, offset)
+}
+
+#[inline(always)]
+fn stored_microvolts(stored: i16, gain: f64, offset: f64) -> f32 {
+    ((stored as f64 - offset) * gain) as f32
 }
 
 /// Check the exceptions files of packed data against the data file's
