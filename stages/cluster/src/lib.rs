@@ -496,18 +496,25 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     .expect("unit columns match their schema");
     write_table(&request.output(UNITS_TABLE), &units_batch, &metadata)?;
 
-    let rows: Vec<(i32, i32, i32, f32)> = by_id
-        .iter()
-        .enumerate()
-        .flat_map(|(id, &g)| {
-            let t = &templates[g];
-            t.channels.iter().zip(&t.values).flat_map(move |(&channel, row)| {
-                row.iter().enumerate().map(move |(k, &v)| {
-                    (id as i32, channel as i32, k as i32 - valid.template_before_frames as i32, v as f32)
-                })
-            })
-        })
-        .collect();
+    // The four columns filled in one pass (11 million rows on a 1024-electrode grid).
+    let n_rows: usize = by_id.iter().map(|&g| templates[g].values.iter().map(Vec::len).sum::<usize>()).sum();
+    let (mut unit_ids, mut channels, mut lags, mut values) = (
+        Vec::with_capacity(n_rows),
+        Vec::with_capacity(n_rows),
+        Vec::with_capacity(n_rows),
+        Vec::with_capacity(n_rows),
+    );
+    for (id, &g) in by_id.iter().enumerate() {
+        let t = &templates[g];
+        for (&channel, row) in t.channels.iter().zip(&t.values) {
+            for (k, &v) in row.iter().enumerate() {
+                unit_ids.push(id as i32);
+                channels.push(channel as i32);
+                lags.push(k as i32 - valid.template_before_frames as i32);
+                values.push(v as f32);
+            }
+        }
+    }
     let templates_batch = RecordBatch::try_new(
         Arc::new(Schema::new(vec![
             Field::new("unit_id", DataType::Int32, false),
@@ -516,10 +523,10 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
             Field::new("value_uv", DataType::Float32, false),
         ])),
         vec![
-            Arc::new(Int32Array::from_iter_values(rows.iter().map(|r| r.0))) as ArrayRef,
-            Arc::new(Int32Array::from_iter_values(rows.iter().map(|r| r.1))),
-            Arc::new(Int32Array::from_iter_values(rows.iter().map(|r| r.2))),
-            Arc::new(Float32Array::from_iter_values(rows.iter().map(|r| r.3))),
+            Arc::new(Int32Array::from(unit_ids)) as ArrayRef,
+            Arc::new(Int32Array::from(channels)),
+            Arc::new(Int32Array::from(lags)),
+            Arc::new(Float32Array::from(values)),
         ],
     )
     .expect("template columns match their schema");
