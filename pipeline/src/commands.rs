@@ -1,12 +1,14 @@
 //! The subcommands of `spikeyard`, callable from tests without a process.
 
 use crate::config::PipelineConfig;
-use crate::plan::{build_plan, hash_recording, Plan};
-use crate::runner::{execute, ProgressMode, RunRecord};
+use crate::hash_memo::{data_hash, HashSource};
+use crate::plan::{build_plan, hash_recording, Plan, STAGES_FOLDER};
+use crate::runner::{execute, follow_output, ProgressMode, RunRecord};
 use crate::simulate::{write_recording, Scenario, SimulatedRecording};
 use crate::truth::{score_detection, DetectionScore, Truth};
 use anyhow::Context;
 use arrow_array::{Float64Array, Int32Array, Int64Array};
+use spikeyard_contract::request::PROGRESS_PREFIX;
 use spikeyard_contract::table::{column, read_table};
 use spikeyard_contract::Recording;
 use std::path::Path;
@@ -15,7 +17,7 @@ use std::path::Path;
 ///
 /// # Errors
 /// The recording or config is refused, or a stage cannot be found.
-pub fn plan_run(recording: &Path, out: &Path, config: Option<&Path>) -> anyhow::Result<Plan> {
+pub fn plan_run(recording: &Path, out: &Path, config: Option<&Path>, mode: ProgressMode) -> anyhow::Result<Plan> {
     let recording = Recording::open(recording)?;
     let config = PipelineConfig::load(config)?;
     eprintln!(
@@ -26,8 +28,25 @@ pub fn plan_run(recording: &Path, out: &Path, config: Option<&Path>) -> anyhow::
         recording.sample_rate_hz,
         recording.dtype.name()
     );
-    let hash = hash_recording(&recording)
-        .with_context(|| format!("{}: cannot read to hash it", recording.data_path.display()))?;
+    let data = &recording.data_path;
+    let cannot_hash = || format!("{}: cannot read to hash it", data.display());
+    // Hashed on a thread of its own, its progress shown like a stage's.
+    let (lines, received) = std::sync::mpsc::channel();
+    let memo_folder = out.join(STAGES_FOLDER);
+    let (hashed, _) = std::thread::scope(|scope| {
+        let hashing = scope.spawn(|| {
+            data_hash(data, &memo_folder, move |done, total| {
+                let _ = lines.send(format!("{PROGRESS_PREFIX} {done} {total} bytes"));
+            })
+        });
+        (hashing.join(), follow_output("hashing", received, mode, std::time::Instant::now()))
+    });
+    let (data_hash, source) =
+        hashed.map_err(|_| anyhow::anyhow!("the hashing thread panicked"))?.with_context(cannot_hash)?;
+    if source == HashSource::Remembered {
+        eprintln!("recording data unchanged since its hash was taken (same file, size and times): not hashed again");
+    }
+    let hash = hash_recording(&recording, &data_hash).with_context(cannot_hash)?;
     build_plan(&config, &recording, &hash, out)
 }
 
@@ -42,7 +61,7 @@ pub fn run(
     dry_run: bool,
     mode: ProgressMode,
 ) -> anyhow::Result<Option<RunRecord>> {
-    let plan = plan_run(recording, out, config)?;
+    let plan = plan_run(recording, out, config, mode)?;
     eprint!("{}", plan.describe());
     if dry_run {
         return Ok(None);

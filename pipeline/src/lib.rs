@@ -7,6 +7,8 @@
 //!   before anything runs.
 //! - [`stages`]: finding a stage's executable (config `exec`, next to the
 //!   running `spikeyard`, then `PATH`).
+//! - [`hash_memo`]: the recording's content hash, remembered between runs
+//!   into the same output folder while the file stays the same file.
 //! - [`plan`]: the plan as plain data: stage order, executables, cache keys
 //!   and whether each stage's cached result is still valid.
 //! - [`runner`]: runs the planned stages as child processes, shows their
@@ -18,6 +20,7 @@
 pub mod commands;
 pub mod compare;
 pub mod config;
+pub mod hash_memo;
 pub mod plan;
 pub mod runner;
 pub mod simulate;

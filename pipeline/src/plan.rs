@@ -102,14 +102,15 @@ impl Manifest {
     }
 }
 
-/// Content hash of a recording: description, electrode table and data.
+/// Content hash of a recording: description, electrode table and data,
+/// given the hash of the data file (`hash_file`, or remembered:
+/// [`crate::hash_memo`]).
 ///
 /// # Errors
-/// Any file cannot be read.
-pub fn hash_recording(recording: &Recording) -> std::io::Result<String> {
+/// The description or electrode table cannot be read.
+pub fn hash_recording(recording: &Recording, data: &str) -> std::io::Result<String> {
     let description = std::fs::read(&recording.description_path)?;
     let electrodes = std::fs::read(&recording.electrodes_path)?;
-    let data = hash_file(&recording.data_path)?;
     Ok(hash_parts([
         ("description", description.as_slice()),
         ("electrodes", electrodes.as_slice()),

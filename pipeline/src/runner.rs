@@ -360,7 +360,7 @@ fn run_stage(
 }
 
 /// Show a stage's output as it arrives; returns its last lines.
-fn follow_output(
+pub(crate) fn follow_output(
     stage: &str,
     lines: std::sync::mpsc::Receiver<String>,
     mode: ProgressMode,

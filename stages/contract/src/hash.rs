@@ -12,11 +12,20 @@ use std::path::Path;
 /// # Errors
 /// Any I/O error opening, mapping or reading the file.
 pub fn hash_file(path: &Path) -> std::io::Result<String> {
-    hash_file_in_windows(path, 16 << 20)
+    hash_file_with_progress(path, |_, _| {})
+}
+
+/// [`hash_file`], calling `progress(bytes hashed, bytes in all)` after each
+/// map (a 100 GB recording takes minutes to read).
+///
+/// # Errors
+/// As [`hash_file`].
+pub fn hash_file_with_progress(path: &Path, progress: impl FnMut(u64, u64)) -> std::io::Result<String> {
+    hash_file_in_windows(path, 16 << 20, progress)
 }
 
 /// `window_bytes` must be a multiple of the page size (map offsets are).
-fn hash_file_in_windows(path: &Path, window_bytes: u64) -> std::io::Result<String> {
+fn hash_file_in_windows(path: &Path, window_bytes: u64, mut progress: impl FnMut(u64, u64)) -> std::io::Result<String> {
     let file = std::fs::File::open(path)?;
     let length = file.metadata()?.len();
     let mut hasher = blake3::Hasher::new();
@@ -28,6 +37,7 @@ fn hash_file_in_windows(path: &Path, window_bytes: u64) -> std::io::Result<Strin
         let map = unsafe { memmap2::MmapOptions::new().offset(offset).len(size as usize).map(&file)? };
         hasher.update_rayon(&map);
         offset += size;
+        progress(offset, length);
     }
     Ok(hasher.finalize().to_hex().to_string())
 }
@@ -59,7 +69,12 @@ mod tests {
             let path = dir.path().join(format!("f{length}"));
             std::fs::write(&path, &content).unwrap();
             let expected = blake3::hash(&content).to_hex().to_string();
-            assert_eq!(hash_file_in_windows(&path, 65536).unwrap(), expected, "{length} bytes");
+            let mut reported = Vec::new();
+            let hash = hash_file_in_windows(&path, 65536, |done, total| reported.push((done, total))).unwrap();
+            assert_eq!(hash, expected, "{length} bytes");
+            let windows = length.div_ceil(65536) as u64;
+            assert_eq!(reported.len() as u64, windows);
+            assert_eq!(reported.last().copied(), (windows > 0).then_some((length as u64, length as u64)));
             assert_eq!(hash_file(&path).unwrap(), expected, "{length} bytes");
         }
     }
