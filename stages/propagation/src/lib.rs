@@ -61,8 +61,16 @@ pub struct Footprint {
     pub electrodes: Vec<(f64, f64, bool)>,
 }
 
+/// Bytes of footprint sums held at once. Units are summed in passes of as
+/// many as fit, so the stage's memory does not grow with units × electrodes
+/// (2000 units on 4096 electrodes would need 6 GB in one pass). A pass
+/// reads only the windows that hold its units' spikes, so each spike's
+/// rows are still read once in all.
+pub const SUMS_BUDGET_BYTES: usize = 256 << 20;
+
 /// Spike-triggered averages of `spikes` (unit, sample; ascending sample) on
-/// every electrode, in one pass over the recording.
+/// every electrode, in as few passes over the recording as
+/// [`SUMS_BUDGET_BYTES`] allows.
 ///
 /// # Errors
 /// Reading the recording fails.
@@ -74,9 +82,49 @@ pub fn footprints(
     params: &PropagationParams,
     origin: &Path,
 ) -> Result<Vec<Footprint>, StageFailure> {
+    footprints_within(recording, spikes, n_units, noise_uv, params, origin, SUMS_BUDGET_BYTES)
+}
+
+/// [`footprints`] with the sums held at once kept within `budget_bytes`
+/// (at least one unit per pass). The answer does not depend on the budget.
+fn footprints_within(
+    recording: &Recording,
+    spikes: &[(usize, u64)],
+    n_units: usize,
+    noise_uv: &[f64],
+    params: &PropagationParams,
+    origin: &Path,
+    budget_bytes: usize,
+) -> Result<Vec<Footprint>, StageFailure> {
+    let (before, after) = window_frames(recording.sample_rate_hz, params);
+    let unit_bytes = recording.n_channels * (before + after + 1) * std::mem::size_of::<i64>();
+    let per_pass = (budget_bytes / unit_bytes.max(1)).max(1);
+    let mut prints = Vec::with_capacity(n_units);
+    for first in (0..n_units).step_by(per_pass) {
+        let units = first..(first + per_pass).min(n_units);
+        let in_pass: Vec<(usize, u64)> =
+            spikes.iter().filter(|s| units.contains(&s.0)).map(|&(unit, sample)| (unit - first, sample)).collect();
+        prints.extend(footprints_in_one_pass(recording, &in_pass, units.len(), noise_uv, params, origin)?);
+    }
+    Ok(prints)
+}
+
+/// Frames of the footprint window before and after the spike.
+fn window_frames(fs: f64, params: &PropagationParams) -> (usize, usize) {
+    ((params.before_ms * 1e-3 * fs).round() as usize, (params.after_ms * 1e-3 * fs).round() as usize)
+}
+
+/// The footprints of `n_units` units from one pass over the recording.
+fn footprints_in_one_pass(
+    recording: &Recording,
+    spikes: &[(usize, u64)],
+    n_units: usize,
+    noise_uv: &[f64],
+    params: &PropagationParams,
+    origin: &Path,
+) -> Result<Vec<Footprint>, StageFailure> {
     let fs = recording.sample_rate_hz;
-    let before = (params.before_ms * 1e-3 * fs).round() as usize;
-    let after = (params.after_ms * 1e-3 * fs).round() as usize;
+    let (before, after) = window_frames(fs, params);
     let length = before + after + 1;
     let n_channels = recording.n_channels;
     // Per unit, frame-major: sums[unit][k * n_channels + channel]. Frames
@@ -545,4 +593,45 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     report.summary.insert("units".into(), n_units.into());
     report.summary.insert("branches".into(), found.len().into());
     Ok(report)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use spikeyard_contract::testing::{write_f32_recording, TestRng};
+
+    // Units summed a few per pass (here one) give the footprints of a
+    // single pass, exactly: each unit's sums see the same spikes in the same order.
+    #[test]
+    fn footprints_do_not_depend_on_how_many_units_share_a_pass() {
+        let dir = tempfile::tempdir().unwrap();
+        let (fs, n_channels, n_frames) = (10000.0, 6, 20000usize);
+        let mut rng = TestRng::new(8);
+        let mut samples: Vec<f32> = (0..n_frames * n_channels).map(|_| (5.0 * rng.normal()) as f32).collect();
+        // Unit u fires every 997 + 100 u frames with a trough on channel u, later on the next.
+        let mut spikes = Vec::new();
+        for unit in 0..3usize {
+            for sample in (50..n_frames - 100).step_by(997 + 100 * unit) {
+                spikes.push((unit, sample as u64));
+                samples[sample * n_channels + unit] -= 60.0;
+                samples[(sample + 3) * n_channels + unit + 1] -= 40.0;
+            }
+        }
+        spikes.sort_by_key(|s| s.1);
+        let recording = Recording::open(&write_f32_recording(dir.path(), "r", fs, n_channels, 20.0, &samples)).unwrap();
+        let (params, noise) = (PropagationParams::default(), vec![5.0; n_channels]);
+        let origin = Path::new("spikes");
+        let one_pass = footprints_within(&recording, &spikes, 3, &noise, &params, origin, usize::MAX).unwrap();
+        let unit_by_unit = footprints_within(&recording, &spikes, 3, &noise, &params, origin, 1).unwrap();
+        assert_eq!(one_pass, unit_by_unit);
+        for (unit, print) in one_pass.iter().enumerate() {
+            assert!(print.n_spikes > 10);
+            let (trough, latency_ms, significant) = print.electrodes[unit];
+            assert!(
+                trough < -50.0 && latency_ms.abs() < 0.05 && significant,
+                "unit {unit}: {:?}",
+                print.electrodes[unit]
+            );
+        }
+    }
 }
