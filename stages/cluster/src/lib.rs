@@ -33,7 +33,7 @@ use params::{ClusterParams, ValidClusterParams};
 use rayon::prelude::*;
 use spikeyard_contract::events::{for_each_event_window, EventRecord};
 use spikeyard_contract::sampling::keep;
-use spikeyard_contract::table::{column, for_each_batch, write_table};
+use spikeyard_contract::table::{column, for_each_batch, write_table, TableWriter};
 use spikeyard_contract::{ContractError, ProgressReporter, Recording, StageFailure, StageReport, StageRequest};
 use std::path::Path;
 use std::sync::Arc;
@@ -268,6 +268,9 @@ fn measure_templates(
         .collect())
 }
 
+/// Rows of the templates table written at a time.
+const TEMPLATE_ROWS_PER_BATCH: usize = 1 << 20;
+
 /// Consecutive channel numbers in a unit's list of channels: the first
 /// channel, its position in the list, and how many follow on.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -496,14 +499,16 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     .expect("unit columns match their schema");
     write_table(&request.output(UNITS_TABLE), &units_batch, &metadata)?;
 
-    // The four columns filled in one pass (11 million rows on a 1024-electrode grid).
-    let n_rows: usize = by_id.iter().map(|&g| templates[g].values.iter().map(Vec::len).sum::<usize>()).sum();
-    let (mut unit_ids, mut channels, mut lags, mut values) = (
-        Vec::with_capacity(n_rows),
-        Vec::with_capacity(n_rows),
-        Vec::with_capacity(n_rows),
-        Vec::with_capacity(n_rows),
-    );
+    // Written a batch of about a million rows at a time (the table has 11
+    // million rows on a 1024-electrode grid), its four columns filled in one pass.
+    let schema = Arc::new(Schema::new(vec![
+        Field::new("unit_id", DataType::Int32, false),
+        Field::new("channel", DataType::Int32, false),
+        Field::new("lag_samples", DataType::Int32, false),
+        Field::new("value_uv", DataType::Float32, false),
+    ]));
+    let mut writer = TableWriter::create(&request.output(TEMPLATES_TABLE), schema.clone(), &metadata)?;
+    let (mut unit_ids, mut channels, mut lags, mut values) = (Vec::new(), Vec::new(), Vec::new(), Vec::new());
     for (id, &g) in by_id.iter().enumerate() {
         let t = &templates[g];
         for (&channel, row) in t.channels.iter().zip(&t.values) {
@@ -514,23 +519,18 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
                 values.push(v as f32);
             }
         }
+        if unit_ids.len() >= TEMPLATE_ROWS_PER_BATCH || id + 1 == by_id.len() {
+            let columns: Vec<ArrayRef> = vec![
+                Arc::new(Int32Array::from(std::mem::take(&mut unit_ids))),
+                Arc::new(Int32Array::from(std::mem::take(&mut channels))),
+                Arc::new(Int32Array::from(std::mem::take(&mut lags))),
+                Arc::new(Float32Array::from(std::mem::take(&mut values))),
+            ];
+            writer
+                .write(&RecordBatch::try_new(schema.clone(), columns).expect("template columns match their schema"))?;
+        }
     }
-    let templates_batch = RecordBatch::try_new(
-        Arc::new(Schema::new(vec![
-            Field::new("unit_id", DataType::Int32, false),
-            Field::new("channel", DataType::Int32, false),
-            Field::new("lag_samples", DataType::Int32, false),
-            Field::new("value_uv", DataType::Float32, false),
-        ])),
-        vec![
-            Arc::new(Int32Array::from(unit_ids)) as ArrayRef,
-            Arc::new(Int32Array::from(channels)),
-            Arc::new(Int32Array::from(lags)),
-            Arc::new(Float32Array::from(values)),
-        ],
-    )
-    .expect("template columns match their schema");
-    write_table(&request.output(TEMPLATES_TABLE), &templates_batch, &metadata)?;
+    writer.finish()?;
 
     let summary = &mut report.summary;
     summary.insert("units".into(), n_merged.into());
