@@ -69,8 +69,9 @@ pub struct Footprint {
 pub const SUMS_BUDGET_BYTES: usize = 256 << 20;
 
 /// Spike-triggered averages of `spikes` (unit, sample; ascending sample) on
-/// every electrode, in as few passes over the recording as
-/// [`SUMS_BUDGET_BYTES`] allows.
+/// every electrode, in as few passes over the recording as a budget of
+/// `budget_bytes` for the sums held at once allows ([`SUMS_BUDGET_BYTES`];
+/// at least one unit per pass). The answer does not depend on the budget.
 ///
 /// # Errors
 /// Reading the recording fails.
@@ -81,92 +82,57 @@ pub fn footprints(
     noise_uv: &[f64],
     params: &PropagationParams,
     origin: &Path,
-) -> Result<Vec<Footprint>, StageFailure> {
-    footprints_within(recording, spikes, n_units, noise_uv, params, origin, SUMS_BUDGET_BYTES)
-}
-
-/// [`footprints`] with the sums held at once kept within `budget_bytes`
-/// (at least one unit per pass). The answer does not depend on the budget.
-fn footprints_within(
-    recording: &Recording,
-    spikes: &[(usize, u64)],
-    n_units: usize,
-    noise_uv: &[f64],
-    params: &PropagationParams,
-    origin: &Path,
     budget_bytes: usize,
 ) -> Result<Vec<Footprint>, StageFailure> {
-    let (before, after) = window_frames(recording.sample_rate_hz, params);
-    let unit_bytes = recording.n_channels * (before + after + 1) * std::mem::size_of::<i64>();
-    let per_pass = (budget_bytes / unit_bytes.max(1)).max(1);
-    let mut prints = Vec::with_capacity(n_units);
-    for first in (0..n_units).step_by(per_pass) {
-        let units = first..(first + per_pass).min(n_units);
-        let in_pass: Vec<(usize, u64)> =
-            spikes.iter().filter(|s| units.contains(&s.0)).map(|&(unit, sample)| (unit - first, sample)).collect();
-        prints.extend(footprints_in_one_pass(recording, &in_pass, units.len(), noise_uv, params, origin)?);
-    }
-    Ok(prints)
-}
-
-/// Frames of the footprint window before and after the spike.
-fn window_frames(fs: f64, params: &PropagationParams) -> (usize, usize) {
-    ((params.before_ms * 1e-3 * fs).round() as usize, (params.after_ms * 1e-3 * fs).round() as usize)
-}
-
-/// The footprints of `n_units` units from one pass over the recording.
-fn footprints_in_one_pass(
-    recording: &Recording,
-    spikes: &[(usize, u64)],
-    n_units: usize,
-    noise_uv: &[f64],
-    params: &PropagationParams,
-    origin: &Path,
-) -> Result<Vec<Footprint>, StageFailure> {
     let fs = recording.sample_rate_hz;
-    let (before, after) = window_frames(fs, params);
+    let before = (params.before_ms * 1e-3 * fs).round() as usize;
+    let after = (params.after_ms * 1e-3 * fs).round() as usize;
     let length = before + after + 1;
     let n_channels = recording.n_channels;
+    let chunk_frames = (params.chunk_seconds * fs).round().max(1.0) as usize;
     // Per unit, frame-major: sums[unit][k * n_channels + channel]. Frames
     // stored as i16 (the filtered copy) are summed exactly as the stored
     // numbers, several times cheaper than converting each to µV, and scaled
     // once at the end; other frames are summed in µV.
     let scale = recording.stored_i16_scale();
-    let size = |wanted: bool| if wanted { n_channels * length } else { 0 };
-    let mut stored_sums = vec![vec![0i64; size(scale.is_some())]; n_units];
-    let mut sums = vec![vec![0.0f64; size(scale.is_none())]; n_units];
-    let mut counts = vec![0usize; n_units];
-    let events = spikes
-        .iter()
-        .enumerate()
-        .map(|(i, &(_, sample))| Ok(EventRecord { index: i as u64, sample, channel: 0, amplitude_uv: 0.0 }));
-    let chunk_frames = (params.chunk_seconds * fs).round().max(1.0) as usize;
-    for_each_event_window(recording, events, origin, chunk_frames, before.max(after) + 1, |window| {
-        for event in window.events {
-            counts[spikes[event.index as usize].0] += 1;
+    let per_pass = (budget_bytes / (n_channels * length * std::mem::size_of::<i64>()).max(1)).max(1);
+    let mut prints = Vec::with_capacity(n_units);
+    for first in (0..n_units).step_by(per_pass) {
+        // This pass's units, numbered from 0, and their spikes.
+        let n_units = per_pass.min(n_units - first);
+        let spikes: Vec<(usize, u64)> =
+            spikes.iter().filter(|s| (first..first + n_units).contains(&s.0)).map(|&(u, t)| (u - first, t)).collect();
+        let size = |wanted: bool| if wanted { n_channels * length } else { 0 };
+        let mut stored_sums = vec![vec![0i64; size(scale.is_some())]; n_units];
+        let mut sums = vec![vec![0.0f64; size(scale.is_none())]; n_units];
+        let mut counts = vec![0usize; n_units];
+        let events = spikes
+            .iter()
+            .enumerate()
+            .map(|(i, &(_, sample))| Ok(EventRecord { index: i as u64, sample, channel: 0, amplitude_uv: 0.0 }));
+        for_each_event_window(recording, events, origin, chunk_frames, before.max(after) + 1, |window| {
+            for event in window.events {
+                counts[spikes[event.index as usize].0] += 1;
+            }
+            if scale.is_some() {
+                add_spike_rows(&mut stored_sums, window, &spikes, before, n_channels, |frame, row| {
+                    let added = window.add_stored_row(frame, row);
+                    debug_assert!(added, "stored_i16_scale promised stored numbers");
+                });
+            } else {
+                add_spike_rows(&mut sums, window, &spikes, before, n_channels, |frame, row| window.add_row(frame, row));
+            }
+            Ok::<(), StageFailure>(())
+        })?;
+        if let Some((gain, offset)) = scale {
+            // Unit by unit, each unit's stored sums freed as its µV sums are made.
+            sums = stored_sums
+                .into_iter()
+                .zip(&counts)
+                .map(|(stored, &n)| stored.into_iter().map(|s| (s as f64 - n as f64 * offset) * gain).collect())
+                .collect();
         }
-        if scale.is_some() {
-            add_spike_rows(&mut stored_sums, window, spikes, before, n_channels, |frame, row| {
-                let added = window.add_stored_row(frame, row);
-                debug_assert!(added, "stored_i16_scale promised stored numbers");
-            });
-        } else {
-            add_spike_rows(&mut sums, window, spikes, before, n_channels, |frame, row| window.add_row(frame, row));
-        }
-        Ok::<(), StageFailure>(())
-    })?;
-    if let Some((gain, offset)) = scale {
-        // Unit by unit, each unit's stored sums freed as its µV sums are made.
-        sums = stored_sums
-            .into_iter()
-            .zip(&counts)
-            .map(|(stored, &n)| stored.into_iter().map(|s| (s as f64 - n as f64 * offset) * gain).collect())
-            .collect();
-    }
-    Ok(sums
-        .into_iter()
-        .zip(counts)
-        .map(|(sum, n)| {
+        prints.extend(sums.into_iter().zip(counts).map(|(sum, n)| {
             let electrodes = (0..n_channels)
                 .map(|channel| {
                     let average: Vec<f64> =
@@ -179,8 +145,9 @@ fn footprints_in_one_pass(
                 })
                 .collect();
             Footprint { n_spikes: n, electrodes }
-        })
-        .collect())
+        }));
+    }
+    Ok(prints)
 }
 
 /// Add each spike's rows of a window (frames `sample − before ..` on every
@@ -507,7 +474,7 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
             message: format!("{} channels, but the recording has {}", noise.len(), recording.n_channels),
         }));
     }
-    let prints = footprints(&recording, &chosen, n_units, &noise, &params, &spikes_path)?;
+    let prints = footprints(&recording, &chosen, n_units, &noise, &params, &spikes_path, SUMS_BUDGET_BYTES)?;
     let metadata = request.table_metadata(EXECUTABLE, VERSION, &params);
     let n_channels = recording.n_channels;
     let footprint_batch = RecordBatch::try_new(
@@ -621,8 +588,8 @@ mod tests {
         let recording = Recording::open(&write_f32_recording(dir.path(), "r", fs, n_channels, 20.0, &samples)).unwrap();
         let (params, noise) = (PropagationParams::default(), vec![5.0; n_channels]);
         let origin = Path::new("spikes");
-        let one_pass = footprints_within(&recording, &spikes, 3, &noise, &params, origin, usize::MAX).unwrap();
-        let unit_by_unit = footprints_within(&recording, &spikes, 3, &noise, &params, origin, 1).unwrap();
+        let one_pass = footprints(&recording, &spikes, 3, &noise, &params, origin, usize::MAX).unwrap();
+        let unit_by_unit = footprints(&recording, &spikes, 3, &noise, &params, origin, 1).unwrap();
         assert_eq!(one_pass, unit_by_unit);
         for (unit, print) in one_pass.iter().enumerate() {
             assert!(print.n_spikes > 10);
