@@ -13,11 +13,18 @@ use spikeyard_contract::table::{column, read_table};
 use spikeyard_contract::Recording;
 use std::path::Path;
 
-/// Plan a run (validating recording and config first).
+/// Plan a run (validating recording and config first); a dry run writes
+/// nothing, not even the remembered hash ([`crate::hash_memo`]).
 ///
 /// # Errors
 /// The recording or config is refused, or a stage cannot be found.
-pub fn plan_run(recording: &Path, out: &Path, config: Option<&Path>, mode: ProgressMode) -> anyhow::Result<Plan> {
+pub fn plan_run(
+    recording: &Path,
+    out: &Path,
+    config: Option<&Path>,
+    dry_run: bool,
+    mode: ProgressMode,
+) -> anyhow::Result<Plan> {
     let recording = Recording::open(recording)?;
     let config = PipelineConfig::load(config)?;
     eprintln!(
@@ -35,7 +42,7 @@ pub fn plan_run(recording: &Path, out: &Path, config: Option<&Path>, mode: Progr
     let memo_folder = out.join(STAGES_FOLDER);
     let (hashed, _) = std::thread::scope(|scope| {
         let hashing = scope.spawn(|| {
-            data_hash(data, &memo_folder, move |done, total| {
+            data_hash(data, &memo_folder, !dry_run, move |done, total| {
                 let _ = lines.send(format!("{PROGRESS_PREFIX} {done} {total} bytes"));
             })
         });
@@ -61,7 +68,7 @@ pub fn run(
     dry_run: bool,
     mode: ProgressMode,
 ) -> anyhow::Result<Option<RunRecord>> {
-    let plan = plan_run(recording, out, config, mode)?;
+    let plan = plan_run(recording, out, config, dry_run, mode)?;
     eprint!("{}", plan.describe());
     if dry_run {
         return Ok(None);

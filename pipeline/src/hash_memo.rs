@@ -64,15 +64,17 @@ pub enum HashSource {
 
 /// The BLAKE3 hash of `data`, from the memo in `memo_folder` when it names
 /// this very file, else by reading the file (`progress` as for
-/// [`spikeyard_contract::hash::hash_file_with_progress`]). A memo that
-/// cannot be read is ignored; one that cannot be written is skipped, as the
-/// hash is still right.
+/// [`spikeyard_contract::hash::hash_file_with_progress`]) and, when
+/// `remember` (not for a dry run, which writes nothing), writing the memo.
+/// A memo that cannot be read is ignored; one that cannot be written is
+/// skipped, as the hash is still right.
 ///
 /// # Errors
 /// The data file cannot be read.
 pub fn data_hash(
     data: &Path,
     memo_folder: &Path,
+    remember: bool,
     progress: impl FnMut(u64, u64),
 ) -> std::io::Result<(String, HashSource)> {
     let memo_path = memo_folder.join(MEMO_FILE);
@@ -87,7 +89,7 @@ pub fn data_hash(
         .checked_sub(Duration::from_secs(2))
         .and_then(|t| t.duration_since(SystemTime::UNIX_EPOCH).ok())
         .is_some_and(|t| before.modified_ns < t.as_nanos() as i128 && before.changed_ns < t.as_nanos() as i128);
-    if settled && FileIdentity::of(data).is_ok_and(|after| after == before) {
+    if remember && settled && FileIdentity::of(data).is_ok_and(|after| after == before) {
         let memo = Memo { file: before, blake3: blake3.clone() };
         if let Ok(bytes) = serde_json::to_vec_pretty(&memo) {
             let _ = std::fs::create_dir_all(memo_folder)
@@ -113,7 +115,7 @@ mod tests {
         let (data, memo) = (dir.path().join("data.bin"), dir.path().join("out"));
         std::fs::write(&data, b"first content").unwrap();
         let hash = |expected: HashSource| {
-            let (hash, source) = data_hash(&data, &memo, |_, _| {}).unwrap();
+            let (hash, source) = data_hash(&data, &memo, true, |_, _| {}).unwrap();
             assert_eq!(hash, blake3::hash(&std::fs::read(&data).unwrap()).to_hex().to_string());
             assert_eq!(source, expected);
         };
@@ -126,8 +128,11 @@ mod tests {
         set_modified(&data, SystemTime::now() - Duration::from_secs(3600));
         hash(HashSource::Computed);
         assert!(!memo.join(MEMO_FILE).exists());
-        // Settled: remembered, then reused while the file stays the same.
+        // Settled: remembered (not by a dry run), then reused while the
+        // file stays the same.
         std::thread::sleep(Duration::from_millis(2100));
+        assert_eq!(data_hash(&data, &memo, false, |_, _| {}).unwrap().1, HashSource::Computed);
+        assert!(!memo.join(MEMO_FILE).exists());
         hash(HashSource::Computed);
         hash(HashSource::Remembered);
         // Rewritten with other bytes of the same length, its modification
