@@ -249,11 +249,11 @@ pub fn measure_qc(
         let per_channel: Vec<(f64, f64, Vec<f64>, usize)> = filtered_columns
             .par_chunks_mut(window_frames)
             .zip(raw_columns.par_chunks(window_frames))
-            .map(|(column, raw_column)| {
-                let squares: f64 = column.iter().map(|&v| (v as f64) * (v as f64)).sum();
+            .map_init(Vec::new, |work, (column, raw_column)| {
+                let squares = qc::sum_in_lanes(column, |v| f64::from(v) * f64::from(v));
                 let sigma = noise::mad_sigma(column);
                 let mut psd = vec![0.0; welch.n_bins()];
-                let count = welch.accumulate(raw_column, &mut psd, &mut Vec::new());
+                let count = welch.accumulate(raw_column, &mut psd, work);
                 (sigma, squares, psd, count)
             })
             .collect();

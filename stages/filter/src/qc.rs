@@ -10,7 +10,9 @@ use rustfft::FftPlanner;
 pub struct Welch {
     segment: usize,
     window: Vec<f64>,
-    scale: f64,
+    /// Per bin of the one-sided spectrum: `scale`, doubled for the bins
+    /// that also stand for their negative frequency.
+    bin_weights: Vec<f64>,
     fft: std::sync::Arc<dyn rustfft::Fft<f64>>,
     pub sample_rate_hz: f64,
 }
@@ -21,7 +23,10 @@ impl Welch {
             (0..segment).map(|n| 0.5 - 0.5 * (2.0 * std::f64::consts::PI * n as f64 / segment as f64).cos()).collect();
         let power: f64 = window.iter().map(|w| w * w).sum();
         let fft = FftPlanner::new().plan_fft_forward(segment);
-        Welch { segment, window, scale: 1.0 / (sample_rate_hz * power), fft, sample_rate_hz }
+        let scale = 1.0 / (sample_rate_hz * power);
+        let last = segment / 2;
+        let bin_weights = (0..=last).map(|bin| if bin == 0 || bin == last { scale } else { scale * 2.0 }).collect();
+        Welch { segment, window, bin_weights, fft, sample_rate_hz }
     }
 
     /// Segment length for a frequency resolution of about `resolution_hz`,
@@ -47,33 +52,41 @@ impl Welch {
     /// returns how many segments were added. Two real segments share one
     /// complex FFT (a + i·b), separated by the transform's symmetry:
     /// `A[k] = (Z[k] + conj(Z[N − k])) / 2` and `B[k] = (Z[k] − conj(Z[N − k])) / 2i`.
+    /// `work` is reused from call to call (the segment and the FFT's scratch).
     pub fn accumulate(&self, signal: &[f32], sum: &mut [f64], work: &mut Vec<Complex64>) -> usize {
         let n = self.segment;
         let starts: Vec<usize> = (0..).map(|k| k * (n / 2)).take_while(|s| s + n <= signal.len()).collect();
         let windowed = |start: usize| {
             let piece = &signal[start..start + n];
-            let mean = sum_in_lanes(piece) / n as f64;
+            let mean = sum_in_lanes(piece, f64::from) / n as f64;
             piece.iter().zip(&self.window).map(move |(&v, w)| (v as f64 - mean) * w)
         };
         let last = n / 2;
-        let mut add = |bin: usize, power: f64| {
-            let one_sided = if bin == 0 || bin == last { 1.0 } else { 2.0 };
-            sum[bin] += power * self.scale * one_sided;
-        };
+        work.resize(n + self.fft.get_inplace_scratch_len(), Complex64::default());
+        let (segment, scratch) = work.split_at_mut(n);
         for pair in starts.chunks(2) {
-            work.clear();
             match *pair {
-                [a, b] => work.extend(windowed(a).zip(windowed(b)).map(|(x, y)| Complex64::new(x, y))),
-                _ => work.extend(windowed(pair[0]).map(|x| Complex64::new(x, 0.0))),
+                [a, b] => {
+                    for (z, (x, y)) in segment.iter_mut().zip(windowed(a).zip(windowed(b))) {
+                        *z = Complex64::new(x, y);
+                    }
+                }
+                _ => {
+                    for (z, x) in segment.iter_mut().zip(windowed(pair[0])) {
+                        *z = Complex64::new(x, 0.0);
+                    }
+                }
             }
-            self.fft.process(work);
-            for bin in 0..=last {
-                let (z, mirror) = (work[bin], work[(n - bin) % n].conj());
+            self.fft.process_with_scratch(segment, scratch);
+            // Bin k and its mirror N − k (bin 0 is its own mirror).
+            let mirrors = std::iter::once(&segment[0]).chain(segment[last..].iter().rev());
+            for ((s, weight), (z, mirror)) in sum.iter_mut().zip(&self.bin_weights).zip(segment.iter().zip(mirrors)) {
+                let (z, mirror) = (*z, mirror.conj());
                 if pair.len() == 2 {
-                    add(bin, (z + mirror).norm_sqr() / 4.0);
-                    add(bin, (z - mirror).norm_sqr() / 4.0);
+                    *s += (z + mirror).norm_sqr() / 4.0 * weight;
+                    *s += (z - mirror).norm_sqr() / 4.0 * weight;
                 } else {
-                    add(bin, z.norm_sqr());
+                    *s += z.norm_sqr() * weight;
                 }
             }
         }
@@ -94,19 +107,19 @@ impl Welch {
     }
 }
 
-/// The sum of `values` in f64, over eight lanes that the compiler can keep
-/// in vector registers (a single running sum waits on each addition). For
-/// f32 values of similar size the f64 sums are exact, so the order does
-/// not change the result.
-fn sum_in_lanes(values: &[f32]) -> f64 {
+/// The sum of `term(v)` over `values` in f64, over eight lanes that the
+/// compiler can keep in vector registers (a single running sum waits on
+/// each addition). For the f32 values themselves, of similar size, the f64
+/// sums are exact, so the order does not change the result.
+pub fn sum_in_lanes(values: &[f32], term: impl Fn(f32) -> f64) -> f64 {
     let mut lanes = [0.0f64; 8];
     let (whole, rest) = values.as_chunks::<8>();
     for chunk in whole {
         for (lane, &v) in lanes.iter_mut().zip(chunk) {
-            *lane += v as f64;
+            *lane += term(v);
         }
     }
-    lanes.iter().sum::<f64>() + rest.iter().map(|&v| v as f64).sum::<f64>()
+    lanes.iter().sum::<f64>() + rest.iter().map(|&v| term(v)).sum::<f64>()
 }
 
 /// A channel's state after QC.
@@ -180,6 +193,7 @@ mod tests {
         assert_eq!(welch.accumulate(&signal, &mut sum, &mut vec![]), 4);
         let mut odd = vec![0.0; welch.n_bins()];
         assert_eq!(welch.accumulate(&signal[..4 * 1024], &mut odd, &mut vec![]), 3);
+        let scale = 1.0 / (fs * welch.window.iter().map(|w| w * w).sum::<f64>());
         for (signal, paired) in [(&signal[..], &sum), (&signal[..4 * 1024], &odd)] {
             let mut plain = vec![0.0; welch.n_bins()];
             for start in (0..).map(|k| k * 1024).take_while(|s| s + 2048 <= signal.len()) {
@@ -190,7 +204,7 @@ mod tests {
                 welch.fft.process(&mut work);
                 for (bin, p) in plain.iter_mut().enumerate() {
                     let one_sided = if bin == 0 || bin == 1024 { 1.0 } else { 2.0 };
-                    *p += work[bin].norm_sqr() * welch.scale * one_sided;
+                    *p += work[bin].norm_sqr() * scale * one_sided;
                 }
             }
             for (a, b) in paired.iter().zip(&plain) {
@@ -203,8 +217,9 @@ mod tests {
     #[test]
     fn lane_sums_add_every_value() {
         let values: Vec<f32> = (0..=20).map(|v| v as f32).collect();
-        assert_eq!(sum_in_lanes(&values), 210.0);
-        assert_eq!(sum_in_lanes(&values[..3]), 3.0);
+        assert_eq!(sum_in_lanes(&values, f64::from), 210.0);
+        assert_eq!(sum_in_lanes(&values[..3], f64::from), 3.0);
+        assert_eq!(sum_in_lanes(&values, |v| f64::from(v) * f64::from(v)), 2870.0);
     }
 
     #[test]
