@@ -211,7 +211,7 @@ fn middle_by_selection(values: &mut [f32], low: usize, high: usize) -> f64 {
 }
 
 /// Most values [`middle_by_counting_avx512`] takes.
-const COUNTING_MAX_VALUES: usize = 64;
+const COUNTING_MAX_VALUES: usize = 128;
 
 /// The mean of the values of ranks `low` and `high` (equal, or `high` =
 /// `low` + 1) among at most [`COUNTING_MAX_VALUES`] finite values, as
@@ -234,9 +234,10 @@ unsafe fn middle_by_counting_avx512(values: &[f32], low: usize, high: usize) -> 
     // than the value of rank r, so it never changes the answer.
     let mut row = [0.0f32; COUNTING_MAX_VALUES];
     row[..values.len()].copy_from_slice(values);
-    // SAFETY: each load reads 16 of the row's 64 values.
-    let candidates: [__m512; 4] = std::array::from_fn(|k| unsafe { _mm512_loadu_ps(row.as_ptr().add(16 * k)) });
-    let mut smaller = [_mm512_setzero_si512(); 4];
+    // SAFETY: each load reads 16 of the row's values.
+    let candidates: [__m512; COUNTING_MAX_VALUES / 16] =
+        std::array::from_fn(|k| unsafe { _mm512_loadu_ps(row.as_ptr().add(16 * k)) });
+    let mut smaller = [_mm512_setzero_si512(); COUNTING_MAX_VALUES / 16];
     let one = _mm512_set1_epi32(1);
     for &v in values {
         let v_lanes = _mm512_set1_ps(v);
@@ -384,7 +385,7 @@ mod tests {
     }
 
     // Counting gives the selection's middle values for every count up to
-    // 64: sets below, around and above the padding's 0, with and without
+    // 128: sets below, around and above the padding's 0, with and without
     // ties.
     #[cfg(target_arch = "x86_64")]
     #[test]
