@@ -3,8 +3,10 @@
 //! the same run (the physical floor), so that figures from different
 //! machines compare. Never run by `cargo test`.
 //!
-//! Input setup (simulation) is outside the timing. Every figure comes from
-//! one run; repeat the command to see the spread.
+//! Input setup (simulation) is outside the timing. The pipeline runs
+//! `--runs` times (each into an emptied results folder); the tables give each
+//! step's median and its range over the runs, since a shared machine's
+//! timings vary by tens of percent from run to run.
 
 use anyhow::Context;
 use clap::Parser;
@@ -37,6 +39,26 @@ struct Args {
     /// with axons crossing it).
     #[arg(long, default_value = "probe")]
     layout: String,
+    /// How many times the pipeline runs; figures are medians over them.
+    #[arg(long, default_value_t = 3, value_parser = clap::value_parser!(u32).range(1..))]
+    runs: u32,
+}
+
+/// Median and range of a step's wall times over the runs.
+#[derive(Clone, Copy)]
+struct Spread {
+    median: f64,
+    low: f64,
+    high: f64,
+}
+
+impl Spread {
+    fn of(mut seconds: Vec<f64>) -> Spread {
+        seconds.sort_by(f64::total_cmp);
+        let n = seconds.len();
+        let median = if n % 2 == 1 { seconds[n / 2] } else { 0.5 * (seconds[n / 2 - 1] + seconds[n / 2]) };
+        Spread { median, low: seconds[0], high: seconds[n - 1] }
+    }
 }
 
 /// A probe-like layout (two staggered columns per shank row, 20 µm apart)
@@ -131,11 +153,23 @@ fn main() -> anyhow::Result<()> {
     read_once(&recording)?;
     let read = read_once(&recording)?.as_secs_f64();
     let out = args.work.join("results");
-    let _ = std::fs::remove_dir_all(&out);
-    let started = Instant::now();
-    let record: RunRecord = spikeyard::commands::run(&description, &out, None, false, ProgressMode::for_stderr())?
-        .context("a benchmark run is never a dry run")?;
-    let total = started.elapsed().as_secs_f64();
+    let mut runs: Vec<(RunRecord, f64)> = Vec::new();
+    for run in 1..=args.runs {
+        eprintln!("run {run} of {}", args.runs);
+        let _ = std::fs::remove_dir_all(&out);
+        let started = Instant::now();
+        let record = spikeyard::commands::run(&description, &out, None, false, ProgressMode::for_stderr())?
+            .context("a benchmark run is never a dry run")?;
+        runs.push((record, started.elapsed().as_secs_f64()));
+    }
+    let stage_names: Vec<String> = runs[0].0.stages.iter().map(|s| s.name.clone()).collect();
+    let stage = |name: &str| -> (Spread, u64) {
+        let of_run = |(record, _): &(RunRecord, f64)| record.stages.iter().find(|s| s.name == name).cloned();
+        let stages: Vec<_> = runs.iter().filter_map(of_run).collect();
+        let peak = stages.iter().map(|s| s.peak_rss_bytes).max().unwrap_or(0);
+        (Spread::of(stages.iter().map(|s| s.wall_seconds).collect()), peak)
+    };
+    let total = Spread::of(runs.iter().map(|(_, seconds)| *seconds).collect());
 
     let duration = recording.duration_s();
     println!(
@@ -143,24 +177,27 @@ fn main() -> anyhow::Result<()> {
         scenario.name, recording.n_channels, recording.sample_rate_hz, duration
     );
     println!("machine: {} cores, {}", std::thread::available_parallelism().map_or(0, |n| n.get()), cpu_model());
-    println!("\n| step | wall s | Msamples/s | x real time | ratio to reading once |");
-    println!("|---|---|---|---|---|");
-    let row = |name: &str, seconds: f64| {
+    println!("runs: {} (wall s: median, and lowest to highest)", args.runs);
+    println!("\n| step | wall s | range s | Msamples/s | x real time | ratio to reading once |");
+    println!("|---|---|---|---|---|---|");
+    let row = |name: &str, spread: Spread| {
+        let seconds = spread.median;
         println!(
-            "| {name} | {seconds:.2} | {:.1} | {:.1} | {:.2} |",
+            "| {name} | {seconds:.2} | {:.2}–{:.2} | {:.1} | {:.1} | {:.2} |",
+            spread.low,
+            spread.high,
             samples / seconds / 1e6,
             duration / seconds,
             seconds / read
         );
     };
-    row("read file once (reference)", read);
-    for stage in &record.stages {
-        row(
-            &format!("stage {} (peak RSS {:.0} MiB)", stage.name, stage.peak_rss_bytes as f64 / (1 << 20) as f64),
-            stage.wall_seconds,
-        );
+    row("read file once (reference)", Spread { median: read, low: read, high: read });
+    for name in &stage_names {
+        let (spread, peak) = stage(name);
+        row(&format!("stage {name} (peak RSS {:.0} MiB)", peak as f64 / (1 << 20) as f64), spread);
     }
     row("whole run (hashing, planning, all stages)", total);
+    let total = total.median;
 
     if args.no_reference {
         return Ok(());
@@ -175,7 +212,7 @@ fn main() -> anyhow::Result<()> {
             println!("|---|---|---|---|");
             let mut sums = (0.0, 0.0);
             for name in ["filter", "detect", "features", "cluster"] {
-                let mine = record.stages.iter().find(|s| s.name == name).map_or(f64::NAN, |s| s.wall_seconds);
+                let mine = if stage_names.iter().any(|s| s == name) { stage(name).0.median } else { f64::NAN };
                 let theirs = timings.get(name).copied().unwrap_or(f64::NAN);
                 sums = (sums.0 + mine, sums.1 + theirs);
                 println!("| {name} | {mine:.2} | {theirs:.2} | {:.1} |", theirs / mine);

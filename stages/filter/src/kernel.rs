@@ -148,32 +148,99 @@ impl FilterEngine {
         before: usize,
         rows: &mut [Lanes],
     ) {
-        let n = frames.len() / n_channels.max(1);
-        if n == 0 {
-            return;
+        // A cascade of single-precision sections only (every usual band)
+        // runs with its section count fixed at compile time: the sections'
+        // state then stays in registers from frame to frame, instead of
+        // going through memory, whose store-to-load delay would otherwise
+        // set the pace of the recursion.
+        if self.iir.double.is_empty() {
+            match self.iir.single.len() {
+                1 => return self.filter_block_fixed::<1>(frames, n_channels, first, before, rows),
+                2 => return self.filter_block_fixed::<2>(frames, n_channels, first, before, rows),
+                3 => return self.filter_block_fixed::<3>(frames, n_channels, first, before, rows),
+                4 => return self.filter_block_fixed::<4>(frames, n_channels, first, before, rows),
+                5 => return self.filter_block_fixed::<5>(frames, n_channels, first, before, rows),
+                6 => return self.filter_block_fixed::<6>(frames, n_channels, first, before, rows),
+                7 => return self.filter_block_fixed::<7>(frames, n_channels, first, before, rows),
+                8 => return self.filter_block_fixed::<8>(frames, n_channels, first, before, rows),
+                _ => {}
+            }
         }
-        let after = rows.len() - before - n;
-        debug_assert!(before < n && after < n, "odd extension reaches at most n - 1 frames");
-        let lanes = BLOCK_LANES.min(n_channels - first);
-        let load = |k: usize| load_lanes(frames, k * n_channels + first, lanes);
-        // Odd extension in f64 then rounded, as `extend_odd` does; from the
-        // frames, since the forward pass overwrites the rows as it goes.
-        let reflect = |about: &Lanes, x: &Lanes| -> Lanes {
-            std::array::from_fn(|l| (2.0 * about[l] as f64 - x[l] as f64) as f32)
-        };
-        let (head, last) = (load(0), load(n - 1));
-        let mut state = self.iir.start();
-        for (i, row) in rows[..before].iter_mut().enumerate() {
-            *row = self.iir.push(&mut state, reflect(&head, &load(before - i)));
+        let iir = &self.iir;
+        filter_block_with(frames, n_channels, first, before, rows, || iir.start(), |state, v| iir.push(state, v));
+    }
+
+    /// [`FilterEngine::filter_block`] for a cascade of `N` single-precision
+    /// sections: the same arithmetic as [`Cascade::push`], section by
+    /// section, on state held in a fixed-size array.
+    #[inline(always)]
+    fn filter_block_fixed<const N: usize>(
+        &self,
+        frames: &Frames,
+        n_channels: usize,
+        first: usize,
+        before: usize,
+        rows: &mut [Lanes],
+    ) {
+        let coefficients: [[f32; 5]; N] = std::array::from_fn(|s| self.iir.single[s]);
+        let start = || [([0.0f32; BLOCK_LANES], [0.0f32; BLOCK_LANES]); N];
+        if self.iir.band_pass_form {
+            filter_block_with(frames, n_channels, first, before, rows, start, |state, mut v| {
+                for (c, (z1, z2)) in coefficients.iter().zip(state.iter_mut()) {
+                    step_band_pass(c, z1, z2, &mut v);
+                }
+                v
+            });
+        } else {
+            filter_block_with(frames, n_channels, first, before, rows, start, |state, mut v| {
+                for (c, (z1, z2)) in coefficients.iter().zip(state.iter_mut()) {
+                    step(c, z1, z2, &mut v);
+                }
+                v
+            });
         }
-        for (k, row) in rows[before..before + n].iter_mut().enumerate() {
-            frames.prefetch((k + PREFETCH_FRAMES) * n_channels + first);
-            *row = self.iir.push(&mut state, load(k));
-        }
-        for (i, row) in rows[before + n..].iter_mut().enumerate() {
-            *row = self.iir.push(&mut state, reflect(&last, &load(n - 2 - i)));
-        }
-        self.iir.run(rows.iter_mut().rev());
+    }
+}
+
+/// The body of [`FilterEngine::filter_block`], for a cascade given by its
+/// zero state (`start`) and its step (`push`: the next output frame).
+#[inline(always)]
+fn filter_block_with<S>(
+    frames: &Frames,
+    n_channels: usize,
+    first: usize,
+    before: usize,
+    rows: &mut [Lanes],
+    start: impl Fn() -> S,
+    push: impl Fn(&mut S, Lanes) -> Lanes,
+) {
+    let n = frames.len() / n_channels.max(1);
+    if n == 0 {
+        return;
+    }
+    let after = rows.len() - before - n;
+    debug_assert!(before < n && after < n, "odd extension reaches at most n - 1 frames");
+    let lanes = BLOCK_LANES.min(n_channels - first);
+    let load = |k: usize| load_lanes(frames, k * n_channels + first, lanes);
+    // Odd extension in f64 then rounded, as `extend_odd` does; from the
+    // frames, since the forward pass overwrites the rows as it goes.
+    let reflect =
+        |about: &Lanes, x: &Lanes| -> Lanes { std::array::from_fn(|l| (2.0 * about[l] as f64 - x[l] as f64) as f32) };
+    let (head, last) = (load(0), load(n - 1));
+    let mut state = start();
+    for (i, row) in rows[..before].iter_mut().enumerate() {
+        *row = push(&mut state, reflect(&head, &load(before - i)));
+    }
+    for (k, row) in rows[before..before + n].iter_mut().enumerate() {
+        frames.prefetch((k + PREFETCH_FRAMES) * n_channels + first);
+        *row = push(&mut state, load(k));
+    }
+    for (i, row) in rows[before + n..].iter_mut().enumerate() {
+        *row = push(&mut state, reflect(&last, &load(n - 2 - i)));
+    }
+    let mut state = start();
+    for row in rows.iter_mut().rev() {
+        *row = push(&mut state, *row);
     }
 }
 
@@ -206,6 +273,11 @@ const SINGLE_PRECISION_MAX_RADIUS: f64 = 0.98;
 struct Cascade {
     single: Vec<[f32; 5]>,
     double: Vec<[f64; 5]>,
+    /// Every single-precision section has the band-pass numerator
+    /// b0·(1 − z⁻²) (b1 = 0, b2 = −b0), as every Butterworth band-pass
+    /// section does: [`step_band_pass`] then gives the same numbers with
+    /// three multiplications instead of five.
+    band_pass_form: bool,
 }
 
 impl Cascade {
@@ -213,10 +285,9 @@ impl Cascade {
         let coefficients = |s: &Section| [s.b[0], s.b[1], s.b[2], s.a[0], s.a[1]];
         let (double, single): (Vec<&Section>, Vec<&Section>) =
             sections.iter().partition(|s| s.pole_radius() > SINGLE_PRECISION_MAX_RADIUS);
-        Cascade {
-            single: single.into_iter().map(|s| coefficients(s).map(|c| c as f32)).collect(),
-            double: double.into_iter().map(coefficients).collect(),
-        }
+        let single: Vec<[f32; 5]> = single.into_iter().map(|s| coefficients(s).map(|c| c as f32)).collect();
+        let band_pass_form = single.iter().all(|&[b0, b1, b2, _, _]| b1 == 0.0 && b2 == -b0);
+        Cascade { single, double: double.into_iter().map(coefficients).collect(), band_pass_form }
     }
 
     /// Run the cascade over a sequence of L-lane frames, in the order the
@@ -243,8 +314,14 @@ impl Cascade {
     /// The cascade's output for the next frame `v`.
     #[inline(always)]
     fn push<const L: usize>(&self, state: &mut CascadeState<L>, mut v: [f32; L]) -> [f32; L] {
-        for (c, (z1, z2)) in self.single.iter().zip(state.single.iter_mut()) {
-            step(c, z1, z2, &mut v);
+        if self.band_pass_form {
+            for (c, (z1, z2)) in self.single.iter().zip(state.single.iter_mut()) {
+                step_band_pass(c, z1, z2, &mut v);
+            }
+        } else {
+            for (c, (z1, z2)) in self.single.iter().zip(state.single.iter_mut()) {
+                step(c, z1, z2, &mut v);
+            }
         }
         if !self.double.is_empty() {
             let mut w = v.map(f64::from);
@@ -275,6 +352,22 @@ where
         let y = b0 * x + z1[l];
         z1[l] = b1 * x - a1 * y + z2[l];
         z2[l] = b2 * x - a2 * y;
+        v[l] = y;
+    }
+}
+
+/// [`step`] for a section with b1 = 0 and b2 = −b0, with the same result
+/// bit for bit: b1·x is 0 and b2·x is −(b0·x), so adding the one and
+/// subtracting the other are exact, and the two multiplications they cost
+/// can go. (The filter's inner loop is bound by its multiplications.)
+#[inline(always)]
+fn step_band_pass<const L: usize>(c: &[f32; 5], z1: &mut [f32; L], z2: &mut [f32; L], v: &mut [f32; L]) {
+    let [b0, _, _, a1, a2] = *c;
+    for l in 0..L {
+        let x = b0 * v[l];
+        let y = x + z1[l];
+        z1[l] = z2[l] - a1 * y;
+        z2[l] = -x - a2 * y;
         v[l] = y;
     }
 }
@@ -550,6 +643,24 @@ mod tests {
             // Unused lanes are zero.
             assert!(blocks[1][before..before + n].iter().all(|row| row[8..].iter().all(|v| *v == 0.0)));
         }
+    }
+
+    // The band-pass step (three multiplications) gives the general step's
+    // numbers bit for bit on Butterworth band-pass sections, whose
+    // numerators are all b0·(1 − z⁻²).
+    #[test]
+    fn band_pass_step_equals_the_general_step() {
+        let sections = design::butterworth_bandpass(3, 300.0, 6000.0, 30000.0);
+        let mut cascade = Cascade::new(&sections);
+        assert!(cascade.band_pass_form && cascade.double.is_empty());
+        let signal: Vec<[f32; 4]> =
+            junk_seeded(4 * 5000, 9).chunks(4).map(|c| std::array::from_fn(|l| (c[l] * 300.0) as f32)).collect();
+        let (mut band, mut general) = (signal.clone(), signal);
+        cascade.run(band.iter_mut());
+        cascade.band_pass_form = false;
+        cascade.run(general.iter_mut());
+        assert!(band.iter().flatten().zip(general.iter().flatten()).all(|(a, b)| a.to_bits() == b.to_bits()));
+        assert!(band.iter().flatten().any(|v| *v != 0.0));
     }
 
     // Single-precision recursions stay far below the i16 storage step of the
