@@ -72,7 +72,7 @@ pub fn check_index(index: &[u8], n_values: u64, n_records: u64) -> Result<(), St
 const TILE: usize = 64;
 
 /// Bit l set where `tile[l]` is the sentinel (`tile` holds at most [`TILE`] bytes).
-#[inline]
+#[inline(always)]
 fn sentinel_mask(tile: &[u8]) -> u64 {
     #[cfg(target_arch = "x86_64")]
     if tile.len() == TILE {
@@ -187,7 +187,14 @@ impl PackedRange<'_> {
     /// time: every byte widened (vectorized), then the tile's sentinels,
     /// found by a mask, given their records' values (the first by a search,
     /// each next one the record after, checked against its position).
+    /// Built for AVX-512 or AVX2 when the CPU has them (`wide_build!`), with
+    /// the same bytes out.
     pub fn decode(&self, start: usize, out: &mut [u8]) {
+        crate::wide_build!(PackedRange<'_>, self.decode_portable(start: usize, out: &mut [u8]) -> ())
+    }
+
+    #[inline(always)]
+    fn decode_portable(&self, start: usize, out: &mut [u8]) {
         self.decode_from(start, out, &mut None);
     }
 
@@ -206,7 +213,7 @@ impl PackedRange<'_> {
     }
 
     /// [`PackedRange::decode`] with the record cursor given (None to start).
-    #[inline]
+    #[inline(always)]
     fn decode_from(&self, start: usize, out: &mut [u8], next: &mut Option<usize>) {
         let (pairs, _) = out.as_chunks_mut::<2>();
         self.visit_values(start, pairs, next, |o, b| *o = i16::from(b).to_le_bytes(), |o, v| *o = v.to_le_bytes());

@@ -2,6 +2,7 @@
 //! one spike seen on several electrodes into one event.
 
 use crate::params::Polarity;
+use spikeyard_contract::packed::PackedRange;
 use spikeyard_contract::recording::{i16_first_where, Frames};
 use std::collections::VecDeque;
 
@@ -49,35 +50,6 @@ pub fn find_crossings(
     last_crossing: &mut [Option<u64>],
     out: &mut Vec<Event>,
 ) {
-    if let Frames::Packed { range, gain, offset } = frames {
-        // Decoded whole to plain i16 first, in parallel, into a buffer kept
-        // from call to call (a fresh one this size would be fresh pages from
-        // the system every time), then scanned as such.
-        use rayon::prelude::*;
-        const VALUES_PER_TASK: usize = 1 << 16;
-        thread_local!(static DECODED: std::cell::RefCell<Vec<u8>> = const { std::cell::RefCell::new(Vec::new()) });
-        let mut bytes = DECODED.with(|d| std::mem::take(&mut *d.borrow_mut()));
-        bytes.resize(2 * range.len(), 0);
-        bytes
-            .par_chunks_mut(2 * VALUES_PER_TASK)
-            .enumerate()
-            .for_each(|(task, out)| range.decode(task * VALUES_PER_TASK, out));
-        let frames = Frames::StoredI16 { bytes: &bytes, gain, offset };
-        find_crossings(
-            frames,
-            n_channels,
-            first_frame,
-            core,
-            thresholds_uv,
-            polarity,
-            peak_frames,
-            dead_frames,
-            last_crossing,
-            out,
-        );
-        DECODED.with(|d| *d.borrow_mut() = bytes);
-        return;
-    }
     let n_frames = frames.len() / n_channels.max(1);
     let (negative, positive) = (
         matches!(polarity, Polarity::Negative | Polarity::Both),
@@ -88,39 +60,67 @@ pub fn find_crossings(
     let scan_microvolts = |values: &[f32]| {
         let low: Vec<f32> = thresholds_uv.iter().map(|t| -t).collect();
         let high: Vec<f32> = thresholds_uv.iter().map(|&t| next_up(t)).collect();
-        scan.run(|from| scan.task(from, &low, &high, |k| &values[k * n_channels..(k + 1) * n_channels], |v| v))
+        let frame = |k: usize| &values[k * n_channels..(k + 1) * n_channels];
+        scan.run(|from| scan.task(scan.frames_from(from), &low, &high, frame, |v| v))
+    };
+    // "Below −t" is "stored below the first value at or above −t";
+    // "above t" is "stored at or above the first value above t".
+    let stored_thresholds = |gain: f64, offset: f64| -> (Vec<i32>, Vec<i32>) {
+        thresholds_uv
+            .iter()
+            .map(|&t| (i16_first_where(gain, offset, |v| v >= -t), i16_first_where(gain, offset, |v| v > t)))
+            .unzip()
     };
     let crossings = match frames {
         Frames::StoredI16 { bytes, gain, offset } if gain > 0.0 => {
-            // "Below −t" is "stored below the first value at or above −t";
-            // "above t" is "stored at or above the first value above t".
-            let (low, high): (Vec<i32>, Vec<i32>) = thresholds_uv
-                .iter()
-                .map(|&t| (i16_first_where(gain, offset, |v| v >= -t), i16_first_where(gain, offset, |v| v > t)))
-                .unzip();
-            let stored = StoredScan { scan: &scan, low: &low, high: &high, bytes, n_channels };
-            scan.run(|from| stored.task(from))
+            let (low, high) = stored_thresholds(gain, offset);
+            let stored = StoredScan { scan: &scan, low: &low, high: &high, n_channels };
+            scan.run(|from| stored.task(from, bytes))
+        }
+        Frames::Packed { range, gain, offset } if gain > 0.0 => {
+            let (low, high) = stored_thresholds(gain, offset);
+            let stored = StoredScan { scan: &scan, low: &low, high: &high, n_channels };
+            let peaks = PeakSearch { frames: peak_frames, n_frames, gain, offset };
+            scan.run(|from| stored.packed_task(from, range, &peaks))
         }
         Frames::Microvolts(values) => scan_microvolts(values),
-        // Stored values with a gain that is not positive: converted whole
-        // (packed frames were decoded above).
+        // Stored values with a gain that is not positive: converted whole.
         Frames::StoredI16 { .. } | Frames::Packed { .. } => {
             scan_microvolts(&(0..frames.len()).map(|i| frames.get(i)).collect::<Vec<f32>>())
         }
     };
-    for (k, c, sign) in crossings.into_iter().flatten() {
+    for (k, c, sign, found) in crossings.into_iter().flatten() {
         let frame = first_frame + k as u64;
         if last_crossing[c].is_some_and(|last| frame < last + dead_frames) {
             continue;
         }
         last_crossing[c] = Some(frame);
-        let stop = (k + peak_frames).min(n_frames);
-        let value = |j: usize| frames.get(j * n_channels + c);
-        let (peak, value) =
-            (k..stop)
-                .map(|j| (j, value(j)))
-                .fold((k, value(k)), |best, (j, v)| if sign * v > sign * best.1 { (j, v) } else { best });
+        let peaks = PeakSearch { frames: peak_frames, n_frames, gain: 1.0, offset: 0.0 };
+        let (peak, value) = found.unwrap_or_else(|| peaks.extremum(k, sign, |j| frames.get(j * n_channels + c)));
         out.push(Event { sample: first_frame + peak as u64, channel: c as u32, amplitude_uv: value });
+    }
+}
+
+/// Where a crossing's extremum is looked for: frames `k..k + frames`,
+/// clipped to the `n_frames` at hand; stored values convert to µV by `gain`
+/// and `offset`.
+struct PeakSearch {
+    frames: usize,
+    n_frames: usize,
+    gain: f64,
+    offset: f64,
+}
+
+impl PeakSearch {
+    /// The frame and µV value of the extremum after a crossing at frame `k`
+    /// with `sign` (−1 below, +1 above); `value(j)` is frame j's value, µV.
+    /// The first of equal extremes wins.
+    #[inline(always)]
+    fn extremum(&self, k: usize, sign: f32, value: impl Fn(usize) -> f32) -> (usize, f32) {
+        let stop = (k + self.frames).min(self.n_frames);
+        (k..stop)
+            .map(|j| (j, value(j)))
+            .fold((k, value(k)), |best, (j, v)| if sign * v > sign * best.1 { (j, v) } else { best })
     }
 }
 
@@ -142,8 +142,9 @@ struct Scan {
     positive: bool,
 }
 
-/// A crossing: frame, channel, sign (−1 below, +1 above).
-type Crossing = (usize, usize, f32);
+/// A crossing: frame, channel, sign (−1 below, +1 above), and its extremum
+/// (frame, µV) when the scan has already found it.
+type Crossing = (usize, usize, f32, Option<(usize, f32)>);
 
 impl Scan {
     const FRAMES_PER_TASK: usize = 4096;
@@ -160,16 +161,20 @@ impl Scan {
             .collect()
     }
 
-    /// The crossings of the run of frames from `from`; `frame(k)` gives
-    /// frame k's stored values, `convert` one of them in the thresholds'
-    /// units. Per channel c, a value v is below when v < `low[c]` and above
+    /// The frames of the run that starts at `from`.
+    fn frames_from(&self, from: usize) -> std::ops::Range<usize> {
+        from..(from + Self::FRAMES_PER_TASK).min(self.end)
+    }
+
+    /// The crossings at `frames` (within a run); `frame(k)` gives frame k's
+    /// stored values, `convert` one of them in the thresholds' units. Per channel c, a value v is below when v < `low[c]` and above
     /// when v ≥ `high[c]`. Plain loops over each frame, which the compiler
     /// vectorizes (iterator adapters would stay out of line in the wide
     /// copies of [`StoredScan`]).
     #[inline(always)]
     fn task<'a, S: Copy + 'a, T: Copy + PartialOrd>(
         &self,
-        from: usize,
+        frames: std::ops::Range<usize>,
         low: &[T],
         high: &[T],
         frame: impl Fn(usize) -> &'a [S],
@@ -179,7 +184,7 @@ impl Scan {
         let n = low.len();
         let high = &high[..n];
         let mut found = Vec::new();
-        for k in from..(from + Self::FRAMES_PER_TASK).min(self.end) {
+        for k in frames {
             let (before, now) = (&frame(k - 1)[..n], &frame(k)[..n]);
             let crosses = |c: usize| {
                 let (b, x) = (convert(before[c]), convert(now[c]));
@@ -197,8 +202,8 @@ impl Scan {
             }
             for c in 0..n {
                 match crosses(c) {
-                    (true, _) => found.push((k, c, -1.0)),
-                    (false, true) => found.push((k, c, 1.0)),
+                    (true, _) => found.push((k, c, -1.0, None)),
+                    (false, true) => found.push((k, c, 1.0, None)),
                     _ => {}
                 }
             }
@@ -214,19 +219,75 @@ struct StoredScan<'a> {
     scan: &'a Scan,
     low: &'a [i32],
     high: &'a [i32],
-    bytes: &'a [u8],
     n_channels: usize,
 }
 
 impl StoredScan<'_> {
-    fn task(&self, from: usize) -> Vec<Crossing> {
-        spikeyard_contract::wide_build!(StoredScan<'_>, self.task_portable(from: usize) -> Vec<Crossing>)
+    /// Frames of a packed run decoded and scanned at a time: with their
+    /// previous frame, their plain i16 values stay in a core's L2 cache
+    /// between the two (a whole chunk decoded first would go to memory and
+    /// back).
+    const PACKED_TILE_FRAMES: usize = 256;
+
+    /// The run from `from` of plain i16 frames (`bytes`, little endian).
+    fn task(&self, from: usize, bytes: &[u8]) -> Vec<Crossing> {
+        spikeyard_contract::wide_build!(StoredScan<'_>, self.task_portable(from: usize, bytes: &[u8]) -> Vec<Crossing>)
     }
 
     #[inline(always)]
-    fn task_portable(&self, from: usize) -> Vec<Crossing> {
-        let (pairs, n) = (self.bytes.as_chunks::<2>().0, self.n_channels);
-        self.scan.task(from, self.low, self.high, |k| &pairs[k * n..(k + 1) * n], |p| i32::from(i16::from_le_bytes(p)))
+    fn task_portable(&self, from: usize, bytes: &[u8]) -> Vec<Crossing> {
+        self.scan_decoded(self.scan.frames_from(from), 0, bytes)
+    }
+
+    /// The run from `from` of packed frames, decoded a tile at a time into a
+    /// buffer kept by the thread (a fresh one would be fresh pages from the
+    /// system every time), with each crossing's extremum found while its
+    /// tile is at hand (read later from the packed bytes, each would be a
+    /// cache miss and, being large, a search for its exception record).
+    fn packed_task(&self, from: usize, range: PackedRange, peaks: &PeakSearch) -> Vec<Crossing> {
+        thread_local!(static DECODED: std::cell::RefCell<Vec<u8>> = const { std::cell::RefCell::new(Vec::new()) });
+        let n = self.n_channels;
+        let frames = self.scan.frames_from(from);
+        let mut found = Vec::new();
+        DECODED.with_borrow_mut(|decoded| {
+            for tile in frames.clone().step_by(Self::PACKED_TILE_FRAMES) {
+                // From the frame before the tile, which each crossing test
+                // compares with, to the last frame its extrema can reach.
+                let tile = tile - 1..(tile + Self::PACKED_TILE_FRAMES).min(frames.end);
+                let decoded_frames = tile.start..(tile.end + peaks.frames).min(peaks.n_frames);
+                decoded.resize(2 * n * decoded_frames.len(), 0);
+                range.decode(decoded_frames.start * n, decoded);
+                let first = tile.start;
+                let crossings = self.scan_tile(tile, decoded);
+                let stored = Frames::StoredI16 { bytes: decoded, gain: peaks.gain, offset: peaks.offset };
+                for (k, c, sign, _) in crossings {
+                    let value = |j: usize| stored.get((j - first) * n + c);
+                    found.push((k, c, sign, Some(peaks.extremum(k, sign, value))));
+                }
+            }
+        });
+        found
+    }
+
+    /// The crossings at frames `tile.start + 1..tile.end`, decoded in `bytes` from `tile.start` on.
+    fn scan_tile(&self, tile: std::ops::Range<usize>, bytes: &[u8]) -> Vec<Crossing> {
+        spikeyard_contract::wide_build!(
+            StoredScan<'_>,
+            self.scan_tile_portable(tile: std::ops::Range<usize>, bytes: &[u8]) -> Vec<Crossing>
+        )
+    }
+
+    #[inline(always)]
+    fn scan_tile_portable(&self, tile: std::ops::Range<usize>, bytes: &[u8]) -> Vec<Crossing> {
+        self.scan_decoded(tile.start + 1..tile.end, tile.start, bytes)
+    }
+
+    /// [`Scan::task`] at `frames`, on plain i16 frames held in `bytes` from frame `first` on.
+    #[inline(always)]
+    fn scan_decoded(&self, frames: std::ops::Range<usize>, first: usize, bytes: &[u8]) -> Vec<Crossing> {
+        let (pairs, n) = (bytes.as_chunks::<2>().0, self.n_channels);
+        let frame = |k: usize| &pairs[(k - first) * n..(k - first + 1) * n];
+        self.scan.task(frames, self.low, self.high, frame, |p| i32::from(i16::from_le_bytes(p)))
     }
 }
 
@@ -362,7 +423,8 @@ mod tests {
     // the thresholds evenly.
     // The stored path (built wide on CPUs that have AVX2 or AVX-512) finds
     // the events of the µV path (as built), on 37 channels: whole vectors
-    // and a remainder.
+    // and a remainder; so do the same values packed (decoded a tile at a
+    // time, crossings and extrema across tile seams).
     #[test]
     fn stored_i16_frames_give_the_events_of_their_microvolts() {
         let (gain, offset, n_channels) = (0.195_f64, 3.0_f64, 37);
@@ -373,11 +435,13 @@ mod tests {
         let stored: Vec<i16> = (0..4000 * n_channels)
             .map(|i| {
                 state = state.wrapping_mul(6364136223846793005).wrapping_add(1442695040888963407);
-                // Values around the thresholds, each one hit exactly now and then.
-                [-47, -46, -48, 52, 53, 51, 0, 55, -60][(state >> 33) as usize % 9] + (i % 3) as i16 - 1
+                // Values around the thresholds, each one hit exactly now
+                // and then, and large ones that packing stores as exceptions.
+                [-47, -46, -48, 52, 53, 51, 0, 55, -60, -300, 250][(state >> 33) as usize % 11] + (i % 3) as i16 - 1
             })
             .collect();
         let bytes: Vec<u8> = stored.iter().flat_map(|v| v.to_le_bytes()).collect();
+        let packed = PackedValues::new(&bytes);
         let values: Vec<f32> = stored.iter().map(|&v| microvolts(v)).collect();
         for polarity in [Polarity::Negative, Polarity::Positive, Polarity::Both] {
             let run = |frames: Frames| {
@@ -389,6 +453,37 @@ mod tests {
             assert!(expected.len() > 100, "{polarity:?}: {}", expected.len());
             assert!(expected.iter().all(|e| e.channel % 4 != 3));
             assert_eq!(run(Frames::StoredI16 { bytes: &bytes, gain, offset }), expected, "{polarity:?}");
+            assert_eq!(run(Frames::Packed { range: packed.range(), gain, offset }), expected, "{polarity:?}");
+        }
+    }
+
+    /// i16 values packed as the filter stores them, readable as one range.
+    struct PackedValues {
+        bytes: Vec<u8>,
+        records: Vec<u8>,
+        starts: Vec<u64>,
+        missing: std::sync::atomic::AtomicU64,
+    }
+
+    impl PackedValues {
+        fn new(little_endian: &[u8]) -> PackedValues {
+            use spikeyard_contract::packed::{Packer, RECORD_BYTES};
+            let (mut packer, mut bytes, mut records, mut index) = (Packer::default(), vec![], vec![], vec![]);
+            packer.pack(little_endian, &mut bytes, &mut records, &mut index);
+            packer.finish(&mut index);
+            let starts: Vec<u64> = index.chunks(8).map(|e| u64::from_le_bytes(e.try_into().unwrap())).collect();
+            assert!(records.len() > 100 * RECORD_BYTES, "exceptions to read: {}", records.len() / RECORD_BYTES);
+            PackedValues { bytes, records, starts, missing: Default::default() }
+        }
+
+        fn range(&self) -> PackedRange<'_> {
+            PackedRange {
+                bytes: &self.bytes,
+                records: &self.records,
+                starts: &self.starts,
+                first: 0,
+                missing: &self.missing,
+            }
         }
     }
 
