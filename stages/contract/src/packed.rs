@@ -253,6 +253,25 @@ impl PackedRange<'_> {
     }
 }
 
+/// i16 little-endian values to one byte each: the value when within
+/// ±127, else the sentinel. Built for AVX-512 or AVX2 when the CPU has them
+/// (`wide_build!`), with the same bytes out.
+struct Narrowing;
+
+impl Narrowing {
+    fn run(&self, values: &[u8], bytes: &mut [u8]) {
+        crate::wide_build!(Narrowing, self.run_portable(values: &[u8], bytes: &mut [u8]) -> ())
+    }
+
+    #[inline(always)]
+    fn run_portable(&self, values: &[u8], bytes: &mut [u8]) {
+        for (v, b) in values.as_chunks::<2>().0.iter().zip(bytes.iter_mut()) {
+            let v = i16::from_le_bytes(*v);
+            *b = if (-127..=127).contains(&v) { v as i8 as u8 } else { SENTINEL };
+        }
+    }
+}
+
 /// Packs i16 values into bytes, exception records and index entries, a
 /// piece at a time, keeping count of the values and records so far.
 #[derive(Debug, Default)]
@@ -267,6 +286,9 @@ impl Packer {
     /// an index entry appended to `index` for each block that starts here.
     pub fn pack(&mut self, values: &[u8], bytes: &mut Vec<u8>, records: &mut Vec<u8>, index: &mut Vec<u8>) {
         bytes.resize(values.len() / 2, 0);
+        // The bytes first (vectorized), then the values that need a record
+        // are those whose byte is the sentinel.
+        Narrowing.run(values, bytes);
         let (mut values, mut out) = (values, bytes.as_mut_slice());
         while !out.is_empty() {
             let position = self.values % BLOCK_VALUES;
@@ -276,13 +298,7 @@ impl Packer {
             // Up to the end of this block.
             let n = ((BLOCK_VALUES - position) as usize).min(out.len());
             let (segment, rest) = std::mem::take(&mut out).split_at_mut(n);
-            for (t, (tile, bytes)) in values[..2 * n].chunks(2 * TILE).zip(segment.chunks_mut(TILE)).enumerate() {
-                // The bytes (vectorizable), then the values that need a
-                // record are those whose byte is the sentinel.
-                for (v, b) in tile.chunks_exact(2).zip(bytes.iter_mut()) {
-                    let v = i16::from_le_bytes([v[0], v[1]]);
-                    *b = if (-127..=127).contains(&v) { v as i8 as u8 } else { SENTINEL };
-                }
+            for (t, (tile, bytes)) in values[..2 * n].chunks(2 * TILE).zip(segment.chunks(TILE)).enumerate() {
                 let mut outside = sentinel_mask(bytes);
                 while outside != 0 {
                     let l = outside.trailing_zeros() as usize;
@@ -307,6 +323,22 @@ impl Packer {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    // Every i16 narrows to itself within ±127 and to the sentinel beyond,
+    // on the path this CPU runs and on the portable one.
+    #[test]
+    fn narrowing_keeps_small_values_and_marks_the_rest() {
+        let all: Vec<i16> = (i16::MIN..=i16::MAX).collect();
+        let le: Vec<u8> = all.iter().flat_map(|v| v.to_le_bytes()).collect();
+        let (mut wide, mut portable) = (vec![0u8; all.len()], vec![1u8; all.len()]);
+        Narrowing.run(&le, &mut wide);
+        Narrowing.run_portable(&le, &mut portable);
+        assert_eq!(wide, portable);
+        for (v, b) in all.iter().zip(&wide) {
+            let expected = if (-127..=127).contains(v) { *v as i8 as u8 } else { SENTINEL };
+            assert_eq!(*b, expected, "{v}");
+        }
+    }
     use std::sync::atomic::{AtomicU64, Ordering};
 
     /// Pack `values` in pieces of `piece` values.
