@@ -1358,6 +1358,33 @@ mod layout_tests {
 /// into channel-major columns (`out[channel * n_frames + frame]`), tile by
 /// tile so that both sides stay in cache. One pass, instead of one strided
 /// pass per channel.
+/// The frames a [`Recording::visit_frames`] hands over, channel-major µV
+/// (`out[channel * n_frames + frame]`), converted as they are moved: in
+/// parallel over blocks of 32 channels, each reading its channels of every
+/// frame (one short run per frame, as the filter reads them) and writing
+/// 32 columns. One pass over the stored values, where reading them to µV
+/// first and transposing after takes two.
+pub fn frames_to_channel_major(frames: &Frames, n_channels: usize, out: &mut Vec<f32>) {
+    use rayon::prelude::*;
+    const CHANNELS: usize = 32;
+    let n_frames = frames.len() / n_channels.max(1);
+    out.clear();
+    out.resize(n_frames * n_channels, 0.0);
+    if n_frames == 0 {
+        return;
+    }
+    out.par_chunks_mut(CHANNELS * n_frames).enumerate().for_each(|(task, block)| {
+        let (first, width) = (task * CHANNELS, block.len() / n_frames);
+        let mut row = [0.0f32; CHANNELS];
+        for k in 0..n_frames {
+            frames.copy_to(k * n_channels + first, &mut row[..width]);
+            for (c, v) in row[..width].iter().enumerate() {
+                block[c * n_frames + k] = *v;
+            }
+        }
+    });
+}
+
 pub fn to_channel_major(frames: &[f32], n_channels: usize, out: &mut Vec<f32>) {
     use rayon::prelude::*;
     // Channels per task (their values share cache lines when read) and
@@ -1401,6 +1428,10 @@ mod transpose_tests {
             let strided: Vec<f32> = frames.iter().skip(channel).step_by(n_channels).copied().collect();
             assert_eq!(&columns[channel * n_frames..(channel + 1) * n_frames], &strided[..]);
         }
+        // Two whole blocks of 32 channels and a part one.
+        let mut from_frames = vec![1.0; 5];
+        super::frames_to_channel_major(&Frames::Microvolts(&frames), n_channels, &mut from_frames);
+        assert_eq!(from_frames, columns);
     }
 
     #[test]
@@ -1493,6 +1524,18 @@ mod transpose_tests {
             let a = plain.visit_frames(start, end, &mut Vec::new(), look).unwrap();
             let b = packed.visit_frames(start, end, &mut Vec::new(), look).unwrap();
             assert_eq!(a, b, "visit_frames {start}..{end}");
+            let mut by_channel = Vec::new();
+            super::to_channel_major(
+                &sa.iter().map(|&v| (v * 0.5) as f32).collect::<Vec<_>>(),
+                n_channels,
+                &mut by_channel,
+            );
+            for recording in [&plain, &packed] {
+                let mut columns = vec![];
+                let transpose = |f: Frames| super::frames_to_channel_major(&f, n_channels, &mut columns);
+                recording.visit_frames(start, end, &mut Vec::new(), transpose).unwrap();
+                assert_eq!(columns, by_channel, "frames_to_channel_major {start}..{end}");
+            }
             assert_eq!(a.0, a.1);
             let stored_plus_3: Vec<f64> = a.3.iter().map(|&s| (s + 3) as f64).collect();
             assert_eq!(stored_plus_3, sa, "add_stored_to {start}..{end}");

@@ -27,7 +27,9 @@ use kernel::{FilterEngine, Lanes, ReferenceScratch, Scratch, BLOCK_LANES};
 use params::{FilterParams, FilteredStorage, Reference, ValidFilterParams};
 use qc::{ChannelStatus, Welch};
 use rayon::prelude::*;
-use spikeyard_contract::recording::{to_channel_major, RecordingWriter, SampleEncoder, Storage};
+use spikeyard_contract::recording::{
+    frames_to_channel_major, to_channel_major, RecordingWriter, SampleEncoder, Storage,
+};
 use spikeyard_contract::table::write_table;
 use spikeyard_contract::{
     noise, Chunk, ContractError, ProgressReporter, Recording, RecordingError, StageFailure, StageReport, StageRequest,
@@ -243,9 +245,10 @@ pub fn measure_qc(
     let (mut raw, mut filtered_columns, mut raw_columns) = (Vec::new(), Vec::new(), Vec::new());
     for window in &windows {
         filter_chunk(engine, recording, window, &mut filtered)?;
-        recording.read_frames(window.core_start, window.core_end, &mut raw)?;
         filtered.to_channel_major(&mut filtered_columns);
-        to_channel_major(&raw, n_channels, &mut raw_columns);
+        recording.visit_frames(window.core_start, window.core_end, &mut raw, |frames| {
+            frames_to_channel_major(&frames, n_channels, &mut raw_columns)
+        })?;
         let per_channel: Vec<(f64, f64, Vec<f64>, usize)> = filtered_columns
             .par_chunks_mut(window_frames)
             .zip(raw_columns.par_chunks(window_frames))
