@@ -1354,10 +1354,6 @@ mod layout_tests {
     }
 }
 
-/// Transpose time-major frames (`frames[frame * n_channels + channel]`)
-/// into channel-major columns (`out[channel * n_frames + frame]`), tile by
-/// tile so that both sides stay in cache. One pass, instead of one strided
-/// pass per channel.
 /// The frames a [`Recording::visit_frames`] hands over, channel-major µV
 /// (`out[channel * n_frames + frame]`), converted as they are moved: in
 /// parallel over blocks of 32 channels, each reading its channels of every
@@ -1385,33 +1381,10 @@ pub fn frames_to_channel_major(frames: &Frames, n_channels: usize, out: &mut Vec
     });
 }
 
+/// Transpose time-major frames (`frames[frame * n_channels + channel]`)
+/// into channel-major columns (`out[channel * n_frames + frame]`).
 pub fn to_channel_major(frames: &[f32], n_channels: usize, out: &mut Vec<f32>) {
-    use rayon::prelude::*;
-    // Channels per task (their values share cache lines when read) and
-    // frames per pass (their lines stay in cache while a task's channels
-    // are copied out of them).
-    const CHANNELS: usize = 32;
-    const FRAMES: usize = 256;
-    let n_frames = frames.len() / n_channels.max(1);
-    out.clear();
-    out.resize(n_frames * n_channels, 0.0);
-    if n_frames == 0 {
-        return;
-    }
-    out.par_chunks_mut(CHANNELS * n_frames).enumerate().for_each(|(task, block)| {
-        let first = task * CHANNELS;
-        let width = block.len() / n_frames;
-        for frame0 in (0..n_frames).step_by(FRAMES) {
-            let frame1 = (frame0 + FRAMES).min(n_frames);
-            let rows = &frames[frame0 * n_channels..frame1 * n_channels];
-            for c in 0..width {
-                let column = &mut block[c * n_frames + frame0..c * n_frames + frame1];
-                for (o, row) in column.iter_mut().zip(rows.chunks_exact(n_channels)) {
-                    *o = row[first + c];
-                }
-            }
-        }
-    });
+    frames_to_channel_major(&Frames::Microvolts(frames), n_channels, out);
 }
 
 #[cfg(test)]
@@ -1420,6 +1393,7 @@ mod transpose_tests {
 
     #[test]
     fn channel_major_columns_match_strided_reads() {
+        // Two whole blocks of 32 channels and a part one.
         let (n_frames, n_channels) = (130, 70);
         let frames: Vec<f32> = (0..n_frames * n_channels).map(|i| i as f32).collect();
         let mut columns = vec![1.0; 5];
@@ -1428,10 +1402,6 @@ mod transpose_tests {
             let strided: Vec<f32> = frames.iter().skip(channel).step_by(n_channels).copied().collect();
             assert_eq!(&columns[channel * n_frames..(channel + 1) * n_frames], &strided[..]);
         }
-        // Two whole blocks of 32 channels and a part one.
-        let mut from_frames = vec![1.0; 5];
-        super::frames_to_channel_major(&Frames::Microvolts(&frames), n_channels, &mut from_frames);
-        assert_eq!(from_frames, columns);
     }
 
     #[test]
