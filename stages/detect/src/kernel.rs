@@ -71,6 +71,7 @@ pub fn find_crossings(
             .map(|&t| (i16_first_where(gain, offset, |v| v >= -t), i16_first_where(gain, offset, |v| v > t)))
             .unzip()
     };
+    let peaks = PeakSearch { frames: peak_frames, n_frames };
     let crossings = match frames {
         Frames::StoredI16 { bytes, gain, offset } if gain > 0.0 => {
             let (low, high) = stored_thresholds(gain, offset);
@@ -80,8 +81,7 @@ pub fn find_crossings(
         Frames::Packed { range, gain, offset } if gain > 0.0 => {
             let (low, high) = stored_thresholds(gain, offset);
             let stored = StoredScan { scan: &scan, low: &low, high: &high, n_channels };
-            let peaks = PeakSearch { frames: peak_frames, n_frames, gain, offset };
-            scan.run(|from| stored.packed_task(from, range, &peaks))
+            scan.run(|from| stored.packed_task(from, range, (gain, offset), &peaks))
         }
         Frames::Microvolts(values) => scan_microvolts(values),
         // Stored values with a gain that is not positive: converted whole.
@@ -95,20 +95,16 @@ pub fn find_crossings(
             continue;
         }
         last_crossing[c] = Some(frame);
-        let peaks = PeakSearch { frames: peak_frames, n_frames, gain: 1.0, offset: 0.0 };
         let (peak, value) = found.unwrap_or_else(|| peaks.extremum(k, sign, |j| frames.get(j * n_channels + c)));
         out.push(Event { sample: first_frame + peak as u64, channel: c as u32, amplitude_uv: value });
     }
 }
 
 /// Where a crossing's extremum is looked for: frames `k..k + frames`,
-/// clipped to the `n_frames` at hand; stored values convert to µV by `gain`
-/// and `offset`.
+/// clipped to the `n_frames` at hand.
 struct PeakSearch {
     frames: usize,
     n_frames: usize,
-    gain: f64,
-    offset: f64,
 }
 
 impl PeakSearch {
@@ -239,12 +235,19 @@ impl StoredScan<'_> {
         self.scan_decoded(self.scan.frames_from(from), 0, bytes)
     }
 
-    /// The run from `from` of packed frames, decoded a tile at a time into a
+    /// The run from `from` of packed frames (µV = (stored − offset) × gain),
+    /// decoded a tile at a time into a
     /// buffer kept by the thread (a fresh one would be fresh pages from the
     /// system every time), with each crossing's extremum found while its
     /// tile is at hand (read later from the packed bytes, each would be a
     /// cache miss and, being large, a search for its exception record).
-    fn packed_task(&self, from: usize, range: PackedRange, peaks: &PeakSearch) -> Vec<Crossing> {
+    fn packed_task(
+        &self,
+        from: usize,
+        range: PackedRange,
+        (gain, offset): (f64, f64),
+        peaks: &PeakSearch,
+    ) -> Vec<Crossing> {
         thread_local!(static DECODED: std::cell::RefCell<Vec<u8>> = const { std::cell::RefCell::new(Vec::new()) });
         let n = self.n_channels;
         let frames = self.scan.frames_from(from);
@@ -259,7 +262,7 @@ impl StoredScan<'_> {
                 range.decode(decoded_frames.start * n, decoded);
                 let first = tile.start;
                 let crossings = self.scan_tile(tile, decoded);
-                let stored = Frames::StoredI16 { bytes: decoded, gain: peaks.gain, offset: peaks.offset };
+                let stored = Frames::StoredI16 { bytes: decoded, gain, offset };
                 for (k, c, sign, _) in crossings {
                     let value = |j: usize| stored.get((j - first) * n + c);
                     found.push((k, c, sign, Some(peaks.extremum(k, sign, value))));
