@@ -323,6 +323,7 @@ impl Packer {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use std::sync::atomic::{AtomicU64, Ordering};
 
     // Every i16 narrows to itself within ±127 and to the sentinel beyond,
     // on the path this CPU runs and on the portable one.
@@ -339,7 +340,6 @@ mod tests {
             assert_eq!(*b, expected, "{v}");
         }
     }
-    use std::sync::atomic::{AtomicU64, Ordering};
 
     /// Pack `values` in pieces of `piece` values.
     fn pack_all(values: &[i16], piece: usize) -> (Vec<u8>, Vec<u8>, Vec<u8>) {
