@@ -31,7 +31,7 @@ use merge::{Template, TemplateSummary};
 use model::Mixture;
 use params::{ClusterParams, ValidClusterParams};
 use rayon::prelude::*;
-use spikeyard_contract::events::{for_each_event_window, EventRecord};
+use spikeyard_contract::events::{channel_runs, for_each_event_window, ChannelRun, EventRecord};
 use spikeyard_contract::sampling::keep;
 use spikeyard_contract::table::{column, for_each_batch, write_table, TableWriter};
 use spikeyard_contract::{ContractError, ProgressReporter, Recording, StageFailure, StageReport, StageRequest};
@@ -203,7 +203,7 @@ fn measure_templates(
     // Per unit, frame-major sums (frame k, then the unit's channels in order),
     // and its channels as runs of consecutive numbers, each read in one go.
     let mut sums: Vec<Vec<f64>> = unit_channels.iter().map(|c| vec![0.0; length * c.len()]).collect();
-    let runs: Vec<Vec<ChannelRun>> = unit_channels.iter().map(|c| channel_runs(c)).collect();
+    let runs: Vec<Vec<ChannelRun>> = unit_channels.iter().map(|c| channel_runs(c.iter().copied())).collect();
     let mut averaged = vec![0usize; n_units];
     let chosen_spikes = spikes.iter().enumerate().filter(|(i, s)| {
         let probability = params.template_spikes as f64 / counts[s.unit as usize].max(1) as f64;
@@ -234,21 +234,13 @@ fn measure_templates(
             next[unit_of(event)] += 1;
         }
         // In parallel over units, each adding its own spikes in order.
-        sums.par_iter_mut().zip(&runs).enumerate().for_each_init(Vec::new, |row, (unit, (sums, runs))| {
-            row.resize(sums.len() / length, 0.0f32);
-            if row.is_empty() {
-                return;
-            }
+        sums.par_iter_mut().zip(&runs).enumerate().for_each_init(Vec::new, |block, (unit, (sums, runs))| {
+            block.resize(sums.len(), 0.0f32);
             for &i in &order[starts[unit]..starts[unit + 1]] {
                 let first = window.events[i].sample as i64 - params.template_before_frames as i64;
-                for (k, sums) in sums.chunks_exact_mut(row.len()).enumerate() {
-                    for run in runs {
-                        let out = &mut row[run.position..run.position + run.len];
-                        window.copy_channels(first + k as i64, run.channel, n_channels, out);
-                    }
-                    for (s, v) in sums.iter_mut().zip(row.iter()) {
-                        *s += *v as f64;
-                    }
+                window.copy_runs(first, runs, n_channels, block);
+                for (s, v) in sums.iter_mut().zip(block.iter()) {
+                    *s += *v as f64;
                 }
             }
         });
@@ -270,26 +262,6 @@ fn measure_templates(
 
 /// Rows of the templates table written at a time.
 const TEMPLATE_ROWS_PER_BATCH: usize = 1 << 20;
-
-/// Consecutive channel numbers in a unit's list of channels: the first
-/// channel, its position in the list, and how many follow on.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-struct ChannelRun {
-    channel: usize,
-    position: usize,
-    len: usize,
-}
-
-fn channel_runs(channels: &[usize]) -> Vec<ChannelRun> {
-    let mut runs: Vec<ChannelRun> = Vec::new();
-    for (position, &channel) in channels.iter().enumerate() {
-        match runs.last_mut() {
-            Some(run) if run.channel + run.len == channel => run.len += 1,
-            _ => runs.push(ChannelRun { channel, position, len: 1 }),
-        }
-    }
-    runs
-}
 
 /// Run the stage on a request.
 ///
@@ -546,15 +518,7 @@ mod tests {
     use super::*;
     use spikeyard_contract::testing::{write_f32_recording, TestRng};
 
-    #[test]
-    fn channel_runs_split_where_numbers_jump() {
-        let run = |channel, position, len| ChannelRun { channel, position, len };
-        assert_eq!(channel_runs(&[0, 1, 2, 5, 7, 8]), vec![run(0, 0, 3), run(5, 3, 1), run(7, 4, 2)]);
-        assert_eq!(channel_runs(&[4, 3]), vec![run(4, 0, 1), run(3, 1, 1)]);
-        assert!(channel_runs(&[]).is_empty());
-    }
-
-    // Templates read each unit's channels as runs, a frame at a time, in
+    // Templates read each unit's channels as runs (copy_runs), a block per spike, in
     // chunks; they must be the plain mean of the spikes' values, frame by
     // frame and channel by channel, with frames past the recording's ends
     // clamped to them, for spikes on both sides of chunk seams.

@@ -111,6 +111,35 @@ impl EventWindow<'_> {
         self.frames.copy_to(self.local(frame) * n_channels + first_channel, out);
     }
 
+    /// The frames `first_frame..first_frame + out.len() / row_len` (each
+    /// clamped to the frames held) of the channels of `runs` into `out`,
+    /// µV, frame-major: frame k's channel at list position p lands at
+    /// `out[k * row_len + p]`, where `row_len` is the channels in all runs.
+    ///
+    /// Runs close together (a span of at most [`SPAN_VALUES`] channels) are
+    /// read as that one span per frame, then moved to their places: one
+    /// read instead of one per run, which for packed frames is one start
+    /// of decoding (and search for the first exception record) per frame.
+    pub fn copy_runs(&self, first_frame: i64, runs: &[ChannelRun], n_channels: usize, out: &mut [f32]) {
+        let row_len: usize = runs.iter().map(|run| run.len).sum();
+        let low = runs.iter().map(|run| run.channel).min().unwrap_or(0);
+        let high = runs.iter().map(|run| run.channel + run.len).max().unwrap_or(0);
+        let mut span = [0.0f32; SPAN_VALUES];
+        for (k, row) in out.chunks_exact_mut(row_len.max(1)).enumerate() {
+            let frame = first_frame + k as i64;
+            if runs.len() > 1 && high - low <= SPAN_VALUES {
+                self.copy_channels(frame, low, n_channels, &mut span[..high - low]);
+                for run in runs {
+                    row[run.position..][..run.len].copy_from_slice(&span[run.channel - low..][..run.len]);
+                }
+            } else {
+                for run in runs {
+                    self.copy_channels(frame, run.channel, n_channels, &mut row[run.position..][..run.len]);
+                }
+            }
+        }
+    }
+
     /// Add every channel at absolute `frame` (clamped to the frames held)
     /// to `sums` (one per channel).
     #[inline]
@@ -125,6 +154,31 @@ impl EventWindow<'_> {
     pub fn add_stored_row(&self, frame: i64, sums: &mut [i64]) -> bool {
         self.frames.add_stored_to(self.local(frame) * sums.len(), sums)
     }
+}
+
+/// The widest span of channels [`EventWindow::copy_runs`] reads in one go.
+pub const SPAN_VALUES: usize = 128;
+
+/// Consecutive channel numbers in a list of channels: the first channel,
+/// its position in the list, and how many follow on. A list's runs are
+/// read in one go each ([`EventWindow::copy_runs`]).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct ChannelRun {
+    pub channel: usize,
+    pub position: usize,
+    pub len: usize,
+}
+
+/// The runs of consecutive channel numbers in `channels`, in list order.
+pub fn channel_runs(channels: impl IntoIterator<Item = usize>) -> Vec<ChannelRun> {
+    let mut runs: Vec<ChannelRun> = Vec::new();
+    for (position, channel) in channels.into_iter().enumerate() {
+        match runs.last_mut() {
+            Some(run) if run.channel + run.len == channel => run.len += 1,
+            _ => runs.push(ChannelRun { channel, position, len: 1 }),
+        }
+    }
+    runs
 }
 
 /// Walk the recording chunk by chunk (cores of `chunk_frames`, reads
@@ -196,4 +250,47 @@ pub fn for_each_event_window<E: From<ContractError>>(
         .into());
     }
     Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn channel_runs_split_where_numbers_jump() {
+        let run = |channel, position, len| ChannelRun { channel, position, len };
+        assert_eq!(channel_runs([0, 1, 2, 5, 7, 8]), vec![run(0, 0, 3), run(5, 3, 1), run(7, 4, 2)]);
+        assert_eq!(channel_runs([4, 3]), vec![run(4, 0, 1), run(3, 1, 1)]);
+        assert!(channel_runs([]).is_empty());
+    }
+
+    // A block of runs holds, value for value, what `value` reads one at a
+    // time, frames past either end of the window clamped to it.
+    #[test]
+    fn copied_runs_hold_the_values_read_one_by_one() {
+        let (n_channels, n_frames) = (7, 6);
+        let frames: Vec<f32> = (0..n_channels * n_frames).map(|i| i as f32 * 0.5 - 3.0).collect();
+        let window = EventWindow { frames: Frames::Microvolts(&frames), first_frame: 10, n_frames, events: &[] };
+        for channels in [vec![3, 4, 0, 6, 5, 1], vec![2, 3], vec![6, 0]] {
+            check_runs(&window, n_channels, &channels);
+        }
+        // Runs further apart than one span are read run by run.
+        let n_channels = SPAN_VALUES + 3;
+        let frames: Vec<f32> = (0..n_channels * n_frames).map(|i| i as f32).collect();
+        let window = EventWindow { frames: Frames::Microvolts(&frames), first_frame: 10, n_frames, events: &[] };
+        check_runs(&window, n_channels, &[SPAN_VALUES + 1, SPAN_VALUES + 2, 0, 1]);
+    }
+
+    fn check_runs(window: &EventWindow, n_channels: usize, channels: &[usize]) {
+        let runs = channel_runs(channels.iter().copied());
+        for first in [7i64, 10, 12, 14] {
+            let mut block = vec![f32::NAN; 5 * channels.len()];
+            window.copy_runs(first, &runs, n_channels, &mut block);
+            for (k, row) in block.chunks(channels.len()).enumerate() {
+                let expected: Vec<f32> =
+                    channels.iter().map(|&c| window.value(first + k as i64, c, n_channels)).collect();
+                assert_eq!(row, expected.as_slice(), "frame {}", first + k as i64);
+            }
+        }
+    }
 }

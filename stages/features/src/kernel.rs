@@ -2,7 +2,6 @@
 //! extremum, snippet cutting by cubic interpolation, and the centre of mass
 //! position estimate.
 
-use spikeyard_contract::events::EventWindow;
 use spikeyard_contract::Electrode;
 
 /// For every channel: itself, then up to `max_channels − 1` other channels
@@ -33,28 +32,26 @@ pub fn subsample_offset(before: f64, at: f64, after: f64) -> f64 {
     (0.5 * (before - after) / curvature).clamp(-0.5, 0.5)
 }
 
-/// Cut the snippet of `channel` centred at the fractional frame `centre`:
-/// `out[j]` is the signal at `centre − before + j`, by Catmull–Rom cubic
-/// interpolation (exact at whole frames).
-pub fn cut_snippet(
-    window: &EventWindow,
-    n_channels: usize,
-    channel: usize,
-    centre: f64,
-    before: usize,
-    out: &mut [f64],
-) {
+/// Where the snippet starting `before` frames ahead of the fractional frame
+/// `centre` lies: its first whole frame, and the fraction past it.
+pub fn snippet_start(centre: f64, before: usize) -> (i64, f64) {
     let start = centre - before as f64;
     let base = start.floor();
-    let t = start - base;
-    let base = base as i64;
-    let value = |frame: i64| window.value(frame, channel, n_channels) as f64;
+    (base as i64, start - base)
+}
+
+/// Cut a snippet from one channel's frames, `column[i * stride]` being the
+/// signal at whole frame `base − 1 + i` ([`snippet_start`]): `out[j]` is
+/// the signal at `base + t + j`, by Catmull–Rom cubic interpolation (exact
+/// at whole frames). `column` holds `out.len() + 3` frames.
+pub fn cut_snippet(column: &[f32], stride: usize, t: f64, out: &mut [f64]) {
+    let value = |i: usize| column[i * stride] as f64;
     // Frames k − 1 ..= k + 2 around output j's frame k = base + j, slid
     // along: each frame is read once, not four times.
-    let mut p = [value(base - 1), value(base), value(base + 1), value(base + 2)];
+    let mut p = [value(0), value(1), value(2), value(3)];
     for (j, o) in out.iter_mut().enumerate() {
         if j > 0 {
-            p = [p[1], p[2], p[3], value(base + j as i64 + 2)];
+            p = [p[1], p[2], p[3], value(j + 3)];
         }
         let [p0, p1, p2, p3] = p;
         if t == 0.0 {
@@ -86,7 +83,6 @@ pub fn centre_of_mass(electrodes: &[Electrode], channels: &[(usize, f64)], troug
 #[cfg(test)]
 mod tests {
     use super::*;
-    use spikeyard_contract::recording::Frames;
 
     #[test]
     fn parabola_finds_the_true_extremum_of_a_sampled_parabola() {
@@ -105,12 +101,16 @@ mod tests {
                 [t * t * 0.01, 5.0]
             })
             .collect();
-        let window = EventWindow { frames: Frames::Microvolts(&frames), first_frame: 100, n_frames: 40, events: &[] };
         let mut out = [0.0; 5];
-        cut_snippet(&window, n_channels, 0, 120.0, 2, &mut out);
+        // Frame 20 less 2 frames before: whole frame 18, read from 17 on.
+        let (base, t) = snippet_start(20.0, 2);
+        assert_eq!((base, t), (18, 0.0));
+        cut_snippet(&frames[17 * n_channels..], n_channels, t, &mut out);
         assert_eq!(out.to_vec(), (18..23).map(|k| frames[k * n_channels] as f64).collect::<Vec<_>>());
         // A quadratic is reproduced exactly by Catmull–Rom between samples.
-        cut_snippet(&window, n_channels, 0, 120.25, 2, &mut out);
+        let (base, t) = snippet_start(20.25, 2);
+        assert_eq!((base, t), (18, 0.25));
+        cut_snippet(&frames[17 * n_channels..], n_channels, t, &mut out);
         for (j, v) in out.iter().enumerate() {
             let t = 18.25 + j as f64;
             assert!((v - t * t * 0.01).abs() < 1e-4, "{v} vs {}", t * t * 0.01);

@@ -24,7 +24,9 @@ use arrow_schema::{DataType, Field, Schema, SchemaRef};
 use params::{FeaturesParams, ValidFeaturesParams};
 use pca::Pca;
 use rayon::prelude::*;
-use spikeyard_contract::events::{for_each_event_window, EventRecord, EventStream, EventWindow};
+use spikeyard_contract::events::{
+    channel_runs, for_each_event_window, ChannelRun, EventRecord, EventStream, EventWindow,
+};
 use spikeyard_contract::table::{write_table, TableWriter};
 use spikeyard_contract::{ProgressReporter, Recording, StageFailure, StageReport, StageRequest};
 use std::sync::Arc;
@@ -63,6 +65,8 @@ pub struct Extractor<'a> {
     pub recording: &'a Recording,
     pub params: &'a ValidFeaturesParams,
     pub neighbourhoods: Vec<Vec<(usize, f64)>>,
+    /// Each neighbourhood's channels as runs of consecutive numbers.
+    runs: Vec<Vec<ChannelRun>>,
 }
 
 /// One event's features.
@@ -75,7 +79,14 @@ pub struct EventFeatures {
     pub features: Vec<f32>,
 }
 
-impl Extractor<'_> {
+impl<'a> Extractor<'a> {
+    pub fn new(recording: &'a Recording, params: &'a ValidFeaturesParams) -> Self {
+        let neighbourhoods =
+            kernel::neighbourhoods(&recording.electrodes, params.neighbour_radius_um, params.max_channels);
+        let runs = neighbourhoods.iter().map(|list| channel_runs(list.iter().map(|&(channel, _)| channel))).collect();
+        Extractor { recording, params, neighbourhoods, runs }
+    }
+
     /// The fractional frame of the event's extremum.
     fn centre(&self, window: &EventWindow, event: &EventRecord) -> f64 {
         let n = self.recording.n_channels;
@@ -87,18 +98,16 @@ impl Extractor<'_> {
     /// Aligned snippets of an event on every electrode of its neighbourhood.
     pub fn snippets(&self, window: &EventWindow, event: &EventRecord) -> (f64, Vec<Vec<f64>>) {
         let centre = self.centre(window, event);
-        let rows = self.neighbourhoods[event.channel]
-            .iter()
-            .map(|&(channel, _)| {
-                let mut row = vec![0.0; self.params.snippet_frames()];
-                kernel::cut_snippet(
-                    window,
-                    self.recording.n_channels,
-                    channel,
-                    centre,
-                    self.params.before_frames,
-                    &mut row,
-                );
+        let (base, t) = kernel::snippet_start(centre, self.params.before_frames);
+        // The neighbourhood's frames base − 1 ..= base + length + 1, read
+        // as runs of channels, one frame-major block.
+        let (length, width) = (self.params.snippet_frames(), self.neighbourhoods[event.channel].len());
+        let mut block = vec![0.0f32; (length + 3) * width];
+        window.copy_runs(base - 1, &self.runs[event.channel], self.recording.n_channels, &mut block);
+        let rows = (0..width)
+            .map(|rank| {
+                let mut row = vec![0.0; length];
+                kernel::cut_snippet(&block[rank..], width, t, &mut row);
                 row
             })
             .collect();
@@ -207,11 +216,7 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     let events_path = request.require_artifact("events.parquet").map_err(StageFailure::bad_input)?.to_path_buf();
     let params: FeaturesParams = request.params().map_err(StageFailure::bad_input)?;
     let valid = params.check(recording.sample_rate_hz).map_err(|message| request.params_refused(message))?;
-    let extractor = Extractor {
-        recording: &recording,
-        params: &valid,
-        neighbourhoods: kernel::neighbourhoods(&recording.electrodes, valid.neighbour_radius_um, valid.max_channels),
-    };
+    let extractor = Extractor::new(&recording, &valid);
     let margin = valid.before_frames.max(valid.after_frames) + 4;
     let metadata = request.table_metadata(EXECUTABLE, VERSION, &params);
 
