@@ -4,7 +4,7 @@
 //! spikes, so memory stays bounded by one chunk and one batch of events.
 
 use crate::error::ContractError;
-use crate::recording::{Frames, Recording};
+use crate::recording::{Frames, Recording, StoredSum};
 use crate::table::column;
 use arrow_array::{Float32Array, Int32Array, Int64Array};
 use parquet::arrow::arrow_reader::{ParquetRecordBatchReader, ParquetRecordBatchReaderBuilder};
@@ -151,7 +151,7 @@ impl EventWindow<'_> {
     /// false, adding nothing, when the frames are µV.
     #[must_use]
     #[inline]
-    pub fn add_stored_row(&self, frame: i64, sums: &mut [i64]) -> bool {
+    pub fn add_stored_row<T: StoredSum>(&self, frame: i64, sums: &mut [T]) -> bool {
         self.frames.add_stored_to(self.local(frame) * sums.len(), sums)
     }
 }

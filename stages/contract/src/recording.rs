@@ -603,6 +603,29 @@ pub fn plan_chunks(n_frames: u64, chunk_frames: usize, margin_frames: usize) -> 
     chunks
 }
 
+/// An integer that sums stored i16 numbers ([`Frames::add_stored_to`]):
+/// i64 for any count, or i32 for up to [`StoredSum::MAX_TERMS`] rows, half
+/// the bytes to add through.
+pub trait StoredSum: Copy + Default + Send + std::ops::AddAssign + From<i16> + std::ops::Add<Output = Self> {
+    /// How many rows of i16 numbers the sum holds without overflowing.
+    const MAX_TERMS: u64;
+    fn to_f64(self) -> f64;
+}
+
+impl StoredSum for i32 {
+    const MAX_TERMS: u64 = (i32::MAX as u64) / 32768;
+    fn to_f64(self) -> f64 {
+        f64::from(self)
+    }
+}
+
+impl StoredSum for i64 {
+    const MAX_TERMS: u64 = (i64::MAX as u64) / 32768;
+    fn to_f64(self) -> f64 {
+        self as f64
+    }
+}
+
 /// Time-major frames as [`Recording::visit_frames`] hands them out: in µV
 /// already, or the stored i16 values, converted where they are looked at.
 #[derive(Debug, Clone, Copy)]
@@ -666,22 +689,22 @@ impl Frames<'_> {
     /// adding nothing, for frames handed over as µV.
     #[must_use]
     #[inline]
-    pub fn add_stored_to(&self, start: usize, sums: &mut [i64]) -> bool {
+    pub fn add_stored_to<T: StoredSum>(&self, start: usize, sums: &mut [T]) -> bool {
         match *self {
             Frames::Microvolts(_) => return false,
             Frames::StoredI16 { bytes, .. } => {
                 let (values, _) = bytes[2 * start..2 * (start + sums.len())].as_chunks::<2>();
                 for (s, b) in sums.iter_mut().zip(values) {
-                    *s += i64::from(i16::from_le_bytes(*b));
+                    *s += T::from(i16::from_le_bytes(*b));
                 }
             }
             Frames::Packed { range, .. } => range.visit_values(
                 start,
                 sums,
                 &mut None,
-                |s, b| *s += i64::from(b),
+                |s, b| *s += T::from(i16::from(b)),
                 // The sentinel's −128 was added: add the rest of the value.
-                |s, v| *s += i64::from(v) + 128,
+                |s, v| *s += T::from(v) + T::from(128),
             ),
         }
         true
@@ -1489,6 +1512,9 @@ mod transpose_tests {
                 f.add_to(f.len() - sums.len(), &mut sums);
                 let mut stored = vec![-3i64; f.len()];
                 assert!(f.add_stored_to(0, &mut stored));
+                let mut narrow = vec![-3i32; f.len()];
+                assert!(f.add_stored_to(0, &mut narrow));
+                assert!(stored.iter().zip(&narrow).all(|(&s, &n)| s == i64::from(n)), "i32 sums {start}..{end}");
                 (values, copied, sums, stored)
             };
             let a = plain.visit_frames(start, end, &mut Vec::new(), look).unwrap();

@@ -39,6 +39,7 @@ use fit::Node;
 use params::PropagationParams;
 use rayon::prelude::*;
 use spikeyard_contract::events::{for_each_event_window, EventRecord, EventWindow};
+use spikeyard_contract::recording::StoredSum;
 use spikeyard_contract::runs::group_runs;
 use spikeyard_contract::sampling::uniform;
 use spikeyard_contract::table::{column, read_table, write_table};
@@ -92,8 +93,10 @@ pub fn footprints(
     let chunk_frames = (params.chunk_seconds * fs).round().max(1.0) as usize;
     // Per unit, frame-major: sums[unit][k * n_channels + channel]. Frames
     // stored as i16 (the filtered copy) are summed exactly as the stored
-    // numbers, several times cheaper than converting each to µV, and scaled
-    // once at the end; other frames are summed in µV.
+    // numbers, several times cheaper than converting each to µV (in i32,
+    // half the bytes of i64, while no unit of a pass has more spikes than
+    // an i32 sum holds), and scaled once at the end; other frames are
+    // summed in µV.
     let scale = recording.stored_i16_scale();
     let per_pass = (budget_bytes / (n_channels * length * std::mem::size_of::<i64>()).max(1)).max(1);
     let mut prints = Vec::with_capacity(n_units);
@@ -102,36 +105,27 @@ pub fn footprints(
         let n_units = per_pass.min(n_units - first);
         let spikes: Vec<(usize, u64)> =
             spikes.iter().filter(|s| (first..first + n_units).contains(&s.0)).map(|&(u, t)| (u - first, t)).collect();
-        let size = |wanted: bool| if wanted { n_channels * length } else { 0 };
-        let mut stored_sums = vec![vec![0i64; size(scale.is_some())]; n_units];
-        let mut sums = vec![vec![0.0f64; size(scale.is_none())]; n_units];
         let mut counts = vec![0usize; n_units];
-        let events = spikes
-            .iter()
-            .enumerate()
-            .map(|(i, &(_, sample))| Ok(EventRecord { index: i as u64, sample, channel: 0, amplitude_uv: 0.0 }));
-        for_each_event_window(recording, events, origin, chunk_frames, before.max(after) + 1, |window| {
-            for event in window.events {
-                counts[spikes[event.index as usize].0] += 1;
-            }
-            if scale.is_some() {
-                add_spike_rows(&mut stored_sums, window, &spikes, before, n_channels, |frame, row| {
-                    let added = window.add_stored_row(frame, row);
-                    debug_assert!(added, "stored_i16_scale promised stored numbers");
-                });
-            } else {
-                add_spike_rows(&mut sums, window, &spikes, before, n_channels, |frame, row| window.add_row(frame, row));
-            }
-            Ok::<(), StageFailure>(())
-        })?;
-        if let Some((gain, offset)) = scale {
-            // Unit by unit, each unit's stored sums freed as its µV sums are made.
-            sums = stored_sums
-                .into_iter()
-                .zip(&counts)
-                .map(|(stored, &n)| stored.into_iter().map(|s| (s as f64 - n as f64 * offset) * gain).collect())
-                .collect();
+        for &(unit, _) in &spikes {
+            counts[unit] += 1;
         }
+        let margin = before.max(after) + 1;
+        let walk = Walk {
+            recording,
+            spikes: &spikes,
+            n_units,
+            size: n_channels * length,
+            before,
+            chunk_frames,
+            margin,
+            origin,
+        };
+        let most = counts.iter().copied().max().unwrap_or(0) as u64;
+        let sums = match scale {
+            Some(scale) if most <= i32::MAX_TERMS => walk.stored_sums::<i32>(scale, &counts)?,
+            Some(scale) => walk.stored_sums::<i64>(scale, &counts)?,
+            None => walk.sums(|window, frame, row: &mut [f64]| window.add_row(frame, row))?,
+        };
         prints.extend(sums.into_iter().zip(counts).map(|(sum, n)| {
             let electrodes = (0..n_channels)
                 .map(|channel| {
@@ -148,6 +142,62 @@ pub fn footprints(
         }));
     }
     Ok(prints)
+}
+
+/// One pass's walk over the windows holding its spikes.
+struct Walk<'a> {
+    recording: &'a Recording,
+    /// (unit of the pass, sample), ascending sample.
+    spikes: &'a [(usize, u64)],
+    n_units: usize,
+    /// Values of one unit's sums: frames × channels.
+    size: usize,
+    before: usize,
+    chunk_frames: usize,
+    margin: usize,
+    origin: &'a Path,
+}
+
+impl Walk<'_> {
+    /// Each unit's sums of its spikes' rows, `add_row` adding one frame.
+    fn sums<T: Copy + Default + Send>(
+        &self,
+        add_row: impl Fn(&EventWindow, i64, &mut [T]) + Sync,
+    ) -> Result<Vec<Vec<T>>, StageFailure> {
+        let mut sums = vec![vec![T::default(); self.size]; self.n_units];
+        let n_channels = self.recording.n_channels;
+        let events = self
+            .spikes
+            .iter()
+            .enumerate()
+            .map(|(i, &(_, sample))| Ok(EventRecord { index: i as u64, sample, channel: 0, amplitude_uv: 0.0 }));
+        for_each_event_window(self.recording, events, self.origin, self.chunk_frames, self.margin, |window| {
+            add_spike_rows(&mut sums, window, self.spikes, self.before, n_channels, |frame, row| {
+                add_row(window, frame, row)
+            });
+            Ok::<(), StageFailure>(())
+        })?;
+        Ok(sums)
+    }
+
+    /// [`Walk::sums`] of the stored i16 numbers in `T`, which must hold
+    /// `counts` rows, scaled to µV unit by unit (each unit's stored sums
+    /// freed as its µV sums are made).
+    fn stored_sums<T: StoredSum>(
+        &self,
+        (gain, offset): (f64, f64),
+        counts: &[usize],
+    ) -> Result<Vec<Vec<f64>>, StageFailure> {
+        let stored = self.sums(|window, frame, row: &mut [T]| {
+            let added = window.add_stored_row(frame, row);
+            debug_assert!(added, "stored_i16_scale promised stored numbers");
+        })?;
+        Ok(stored
+            .into_iter()
+            .zip(counts)
+            .map(|(stored, &n)| stored.into_iter().map(|s| (s.to_f64() - n as f64 * offset) * gain).collect())
+            .collect())
+    }
 }
 
 /// Add each spike's rows of a window (frames `sample − before ..` on every
@@ -565,6 +615,7 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use spikeyard_contract::recording::{RecordingWriter, Storage};
     use spikeyard_contract::testing::{write_f32_recording, TestRng};
 
     // Units summed a few per pass (here one) give the footprints of a
@@ -591,6 +642,39 @@ mod tests {
         let one_pass = footprints(&recording, &spikes, 3, &noise, &params, origin, usize::MAX).unwrap();
         let unit_by_unit = footprints(&recording, &spikes, 3, &noise, &params, origin, 1).unwrap();
         assert_eq!(one_pass, unit_by_unit);
+        // Stored as packed i16, the sums are exact integers: the same in
+        // i32 as in i64, and the footprints those of the µV frames to
+        // within the storage step.
+        let step = 0.25;
+        let mut writer = RecordingWriter::create(
+            dir.path(),
+            "packed",
+            fs,
+            &recording.electrodes,
+            Storage::PackedI16 { microvolts_per_unit: step },
+        )
+        .unwrap();
+        writer.write_frames(&samples).unwrap();
+        let packed = Recording::open(&writer.finish().unwrap()).unwrap();
+        let scale = packed.stored_i16_scale().unwrap();
+        let walk = Walk {
+            recording: &packed,
+            spikes: &spikes,
+            n_units: 3,
+            size: n_channels * 51,
+            before: 10,
+            chunk_frames: 3000,
+            margin: 41,
+            origin,
+        };
+        let counts: Vec<usize> = (0..3).map(|u| spikes.iter().filter(|s| s.0 == u).count()).collect();
+        assert_eq!(walk.stored_sums::<i32>(scale, &counts).unwrap(), walk.stored_sums::<i64>(scale, &counts).unwrap());
+        let from_packed = footprints(&packed, &spikes, 3, &noise, &params, origin, usize::MAX).unwrap();
+        for (a, b) in one_pass.iter().zip(&from_packed) {
+            for (x, y) in a.electrodes.iter().zip(&b.electrodes) {
+                assert!((x.0 - y.0).abs() <= step && (x.1 - y.1).abs() < 0.02 && x.2 == y.2, "{x:?} against {y:?}");
+            }
+        }
         for (unit, print) in one_pass.iter().enumerate() {
             assert!(print.n_spikes > 10);
             let (trough, latency_ms, significant) = print.electrodes[unit];
