@@ -1379,29 +1379,59 @@ mod layout_tests {
 
 /// The frames a [`Recording::visit_frames`] hands over, channel-major µV
 /// (`out[channel * n_frames + frame]`), converted as they are moved: in
-/// parallel over blocks of 32 channels, each reading its channels of every
-/// frame (one short run per frame, as the filter reads them) and writing
-/// 32 columns. One pass over the stored values, where reading them to µV
-/// first and transposing after takes two.
+/// parallel over blocks of [`TRANSPOSE_CHANNELS`] channels, each reading
+/// its channels of a tile of frames (one short run per frame, as the filter
+/// reads them) and writing the tile's stretch of each column. One pass over
+/// the stored values, where reading them to µV first and transposing after
+/// takes two.
 pub fn frames_to_channel_major(frames: &Frames, n_channels: usize, out: &mut Vec<f32>) {
     use rayon::prelude::*;
-    const CHANNELS: usize = 32;
     let n_frames = frames.len() / n_channels.max(1);
     out.clear();
     out.resize(n_frames * n_channels, 0.0);
     if n_frames == 0 {
         return;
     }
-    out.par_chunks_mut(CHANNELS * n_frames).enumerate().for_each(|(task, block)| {
-        let (first, width) = (task * CHANNELS, block.len() / n_frames);
-        let mut row = [0.0f32; CHANNELS];
-        for k in 0..n_frames {
-            frames.copy_to(k * n_channels + first, &mut row[..width]);
-            for (c, v) in row[..width].iter().enumerate() {
-                block[c * n_frames + k] = *v;
+    out.par_chunks_mut(TRANSPOSE_CHANNELS * n_frames)
+        .enumerate()
+        .for_each(|(task, block)| Transpose.block(frames, n_channels, task * TRANSPOSE_CHANNELS, block));
+}
+
+/// Channels per task of [`frames_to_channel_major`].
+const TRANSPOSE_CHANNELS: usize = 32;
+
+/// One block of channels of [`frames_to_channel_major`], built for AVX-512
+/// or AVX2 when the CPU has them (`wide_build!`: the conversion to µV is
+/// then vectorized), with the same values out.
+struct Transpose;
+
+impl Transpose {
+    fn block(&self, frames: &Frames, n_channels: usize, first: usize, block: &mut [f32]) {
+        crate::wide_build!(
+            Transpose,
+            self.block_portable(frames: &Frames, n_channels: usize, first: usize, block: &mut [f32]) -> ()
+        )
+    }
+
+    #[inline(always)]
+    fn block_portable(&self, frames: &Frames, n_channels: usize, first: usize, block: &mut [f32]) {
+        // 16 frames of f32: each column's stretch is one cache line.
+        const TILE_FRAMES: usize = 16;
+        let n_frames = frames.len() / n_channels;
+        let width = block.len() / n_frames;
+        let mut tile = [[0.0f32; TRANSPOSE_CHANNELS]; TILE_FRAMES];
+        for start in (0..n_frames).step_by(TILE_FRAMES) {
+            let m = TILE_FRAMES.min(n_frames - start);
+            for (j, row) in tile[..m].iter_mut().enumerate() {
+                frames.copy_to((start + j) * n_channels + first, &mut row[..width]);
+            }
+            for (c, column) in block.chunks_exact_mut(n_frames).enumerate() {
+                for (o, row) in column[start..start + m].iter_mut().zip(&tile) {
+                    *o = row[c];
+                }
             }
         }
-    });
+    }
 }
 
 /// Transpose time-major frames (`frames[frame * n_channels + channel]`)
