@@ -1379,7 +1379,7 @@ mod layout_tests {
 
 /// The frames a [`Recording::visit_frames`] hands over, channel-major µV
 /// (`out[channel * n_frames + frame]`), converted as they are moved: in
-/// parallel over blocks of [`TRANSPOSE_CHANNELS`] channels, each reading
+/// parallel over blocks of 32 channels, each reading
 /// its channels of a tile of frames (one short run per frame, as the filter
 /// reads them) and writing the tile's stretch of each column. One pass over
 /// the stored values, where reading them to µV first and transposing after
