@@ -1379,55 +1379,51 @@ mod layout_tests {
 
 /// The frames a [`Recording::visit_frames`] hands over, channel-major µV
 /// (`out[channel * n_frames + frame]`), converted as they are moved: in
-/// parallel over blocks of 32 channels, each reading
-/// its channels of a tile of frames (one short run per frame, as the filter
-/// reads them) and writing the tile's stretch of each column. One pass over
-/// the stored values, where reading them to µV first and transposing after
-/// takes two.
+/// parallel over runs of frames, each reading tiles of whole frames (one
+/// run of values: for packed frames one start of decoding per tile) and
+/// writing each column's stretch of the tile. One pass over the stored
+/// values, where reading them to µV first and transposing after takes two.
 pub fn frames_to_channel_major(frames: &Frames, n_channels: usize, out: &mut Vec<f32>) {
     use rayon::prelude::*;
+    const FRAMES_PER_TASK: usize = 1024;
     let n_frames = frames.len() / n_channels.max(1);
     out.clear();
     out.resize(n_frames * n_channels, 0.0);
     if n_frames == 0 {
         return;
     }
-    out.par_chunks_mut(TRANSPOSE_CHANNELS * n_frames)
-        .enumerate()
-        .for_each(|(task, block)| Transpose.block(frames, n_channels, task * TRANSPOSE_CHANNELS, block));
+    let runs = crate::runs::group_runs(out.chunks_mut(n_frames), FRAMES_PER_TASK);
+    runs.into_par_iter().enumerate().for_each_init(Vec::new, |tile, (task, mut columns)| {
+        Transpose.run(frames, task * FRAMES_PER_TASK, &mut columns, tile)
+    });
 }
 
-/// Channels per task of [`frames_to_channel_major`].
-const TRANSPOSE_CHANNELS: usize = 32;
-
-/// One block of channels of [`frames_to_channel_major`], built for AVX-512
-/// or AVX2 when the CPU has them (`wide_build!`: the conversion to µV is
-/// then vectorized), with the same values out.
+/// One run of frames of [`frames_to_channel_major`], built for AVX-512 or
+/// AVX2 when the CPU has them (`wide_build!`: the conversion to µV is then
+/// vectorized), with the same values out.
 struct Transpose;
 
 impl Transpose {
-    fn block(&self, frames: &Frames, n_channels: usize, first: usize, block: &mut [f32]) {
+    fn run(&self, frames: &Frames, first: usize, columns: &mut [&mut [f32]], tile: &mut Vec<f32>) {
         crate::wide_build!(
             Transpose,
-            self.block_portable(frames: &Frames, n_channels: usize, first: usize, block: &mut [f32]) -> ()
+            self.run_portable(frames: &Frames, first: usize, columns: &mut [&mut [f32]], tile: &mut Vec<f32>) -> ()
         )
     }
 
     #[inline(always)]
-    fn block_portable(&self, frames: &Frames, n_channels: usize, first: usize, block: &mut [f32]) {
+    fn run_portable(&self, frames: &Frames, first: usize, columns: &mut [&mut [f32]], tile: &mut Vec<f32>) {
         // 16 frames of f32: each column's stretch is one cache line.
         const TILE_FRAMES: usize = 16;
-        let n_frames = frames.len() / n_channels;
-        let width = block.len() / n_frames;
-        let mut tile = [[0.0f32; TRANSPOSE_CHANNELS]; TILE_FRAMES];
-        for start in (0..n_frames).step_by(TILE_FRAMES) {
-            let m = TILE_FRAMES.min(n_frames - start);
-            for (j, row) in tile[..m].iter_mut().enumerate() {
-                frames.copy_to((start + j) * n_channels + first, &mut row[..width]);
-            }
-            for (c, column) in block.chunks_exact_mut(n_frames).enumerate() {
-                for (o, row) in column[start..start + m].iter_mut().zip(&tile) {
-                    *o = row[c];
+        let n_channels = columns.len();
+        let count = columns.first().map_or(0, |c| c.len());
+        for start in (0..count).step_by(TILE_FRAMES) {
+            let m = TILE_FRAMES.min(count - start);
+            tile.resize(m * n_channels, 0.0);
+            frames.copy_to((first + start) * n_channels, tile);
+            for (c, column) in columns.iter_mut().enumerate() {
+                for (j, o) in column[start..start + m].iter_mut().enumerate() {
+                    *o = tile[j * n_channels + c];
                 }
             }
         }
