@@ -64,8 +64,10 @@ pub fn features_schema(width: usize) -> SchemaRef {
 pub struct Extractor<'a> {
     pub recording: &'a Recording,
     pub params: &'a ValidFeaturesParams,
-    pub neighbourhoods: Vec<Vec<(usize, f64)>>,
-    /// Each neighbourhood's channels as runs of consecutive numbers.
+    /// Per channel: its neighbourhood ([`kernel::neighbourhoods`]), and
+    /// the same channels as runs of consecutive numbers; private, so the
+    /// two cannot disagree.
+    neighbourhoods: Vec<Vec<(usize, f64)>>,
     runs: Vec<Vec<ChannelRun>>,
 }
 
