@@ -170,6 +170,25 @@ impl PackedRange<'_> {
         self.record_of(index).map_or(0, |k| record(self.records, k).1)
     }
 
+    /// Call `exception(index, value)` for each sentinel at `values` of the
+    /// range, in order, with its record's value (0 for a missing record,
+    /// which is noted). Only the sentinels are visited: the bytes are
+    /// compared a tile of 64 at a time, and the records followed with a
+    /// cursor, as in [`PackedRange::visit_values`].
+    #[inline]
+    pub fn visit_exceptions(&self, values: std::ops::Range<usize>, mut exception: impl FnMut(usize, i16)) {
+        let mut next = None;
+        for (t, tile) in self.bytes[values.clone()].chunks(TILE).enumerate() {
+            let mut sentinels = sentinel_mask(tile);
+            while sentinels != 0 {
+                let index = values.start + t * TILE + sentinels.trailing_zeros() as usize;
+                sentinels &= sentinels - 1;
+                let found = self.next_record(&mut next, index);
+                exception(index, found.map_or(0, |r| record(self.records, r).1));
+            }
+        }
+    }
+
     /// The record of the sentinel at `index`: `next` (the one after the
     /// previous sentinel's) when it fits, else by a search; `next` moves on.
     #[inline]

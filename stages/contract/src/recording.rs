@@ -791,8 +791,9 @@ fn i16_microvolts(bytes: &[u8], gain: f64, offset: f64) -> f32 {
     stored_microvolts(i16::from_le_bytes([bytes[0], bytes[1]]), gain, offset)
 }
 
+/// One stored i16 as µV, as every read of stored values converts it.
 #[inline(always)]
-fn stored_microvolts(stored: i16, gain: f64, offset: f64) -> f32 {
+pub fn stored_microvolts(stored: i16, gain: f64, offset: f64) -> f32 {
     ((stored as f64 - offset) * gain) as f32
 }
 

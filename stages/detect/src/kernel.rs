@@ -3,7 +3,7 @@
 
 use crate::params::Polarity;
 use spikeyard_contract::packed::PackedRange;
-use spikeyard_contract::recording::{i16_first_where, Frames};
+use spikeyard_contract::recording::{i16_first_where, stored_microvolts, Frames};
 use std::collections::VecDeque;
 
 /// A detected event.
@@ -81,7 +81,11 @@ pub fn find_crossings(
         Frames::Packed { range, gain, offset } if gain > 0.0 => {
             let (low, high) = stored_thresholds(gain, offset);
             let stored = StoredScan { scan: &scan, low: &low, high: &high, n_channels };
-            scan.run(|from| stored.packed_task(from, range, (gain, offset), &peaks))
+            if stored.only_exceptions_cross() {
+                scan.run(|from| stored.exceptions_task(from, range, (gain, offset), &peaks))
+            } else {
+                scan.run(|from| stored.packed_task(from, range, (gain, offset), &peaks))
+            }
         }
         Frames::Microvolts(values) => scan_microvolts(values),
         // Stored values with a gain that is not positive: converted whole.
@@ -272,6 +276,77 @@ impl StoredScan<'_> {
         found
     }
 
+    /// Whether every threshold lies beyond the values a packed byte holds
+    /// (−127..=127): then only values held by exception records can cross
+    /// (`low` ≤ −127 for the negative side, `high` ≥ 128 for the positive),
+    /// and the extremum after a crossing, further out still, is one of them.
+    fn only_exceptions_cross(&self) -> bool {
+        (!self.scan.negative || self.low.iter().all(|&l| l <= -127))
+            && (!self.scan.positive || self.high.iter().all(|&h| h >= 128))
+    }
+
+    /// [`StoredScan::packed_task`] when [`StoredScan::only_exceptions_cross`]:
+    /// one walk over the run's exceptions ([`PackedRange::visit_exceptions`]),
+    /// from the frame before it to the last frame its extrema can reach,
+    /// with the same crossings and extrema. A byte is never beyond a
+    /// threshold, so the frame before a crossing matters only when it is an
+    /// exception too; nor is a byte beyond a crossing's value, so the
+    /// extremum after it is the first most extreme of the later exceptions
+    /// on its channel within reach.
+    fn exceptions_task(
+        &self,
+        from: usize,
+        range: PackedRange,
+        (gain, offset): (f64, f64),
+        peaks: &PeakSearch,
+    ) -> Vec<Crossing> {
+        let n = self.n_channels;
+        let frames = self.scan.frames_from(from);
+        let reach = (frames.end - 1 + peaks.frames).min(peaks.n_frames);
+        // Per channel: the frame and value of its last exception, and its
+        // crossings whose extremum is still looked for (indices into `found`).
+        let mut last = vec![(usize::MAX, 0i32); n];
+        let mut open: Vec<Vec<usize>> = vec![Vec::new(); n];
+        let mut found: Vec<Crossing> = Vec::new();
+        // The frame of the exception at hand and its first index, moved on
+        // (exceptions come in order) rather than divided out.
+        let (mut k, mut frame_start) = (frames.start - 1, (frames.start - 1) * n);
+        range.visit_exceptions(frame_start..reach * n, |index, x| {
+            while index >= frame_start + n {
+                (k, frame_start) = (k + 1, frame_start + n);
+            }
+            let c = index - frame_start;
+            let microvolts = stored_microvolts(x, gain, offset);
+            let open = &mut open[c];
+            if !open.is_empty() {
+                open.retain(|&i| {
+                    let (crossed, _, sign, Some(extremum)) = &mut found[i] else { return false };
+                    if k >= (*crossed + peaks.frames).min(peaks.n_frames) {
+                        return false;
+                    }
+                    if *sign * microvolts > *sign * extremum.1 {
+                        *extremum = (k, microvolts);
+                    }
+                    true
+                });
+            }
+            let (x, before) = (i32::from(x), (last[c].0 == k.wrapping_sub(1)).then_some(last[c].1));
+            last[c] = (k, x);
+            let sign = if !frames.contains(&k) {
+                return;
+            } else if self.scan.negative && x < self.low[c] && before.is_none_or(|b| b >= self.low[c]) {
+                -1.0
+            } else if self.scan.positive && x >= self.high[c] && before.is_none_or(|b| b < self.high[c]) {
+                1.0
+            } else {
+                return;
+            };
+            open.push(found.len());
+            found.push((k, c, sign, Some((k, microvolts))));
+        });
+        found
+    }
+
     /// The crossings at frames `tile.start + 1..tile.end`, decoded in `bytes` from `tile.start` on.
     fn scan_tile(&self, tile: std::ops::Range<usize>, bytes: &[u8]) -> Vec<Crossing> {
         spikeyard_contract::wide_build!(
@@ -458,6 +533,71 @@ mod tests {
             assert_eq!(run(Frames::StoredI16 { bytes: &bytes, gain, offset }), expected, "{polarity:?}");
             assert_eq!(run(Frames::Packed { range: packed.range(), gain, offset }), expected, "{polarity:?}");
         }
+    }
+
+    // With every threshold beyond what a packed byte holds, the packed scan
+    // walks the exceptions alone (`StoredScan::exceptions_task`). It must
+    // give the events of the µV: across task runs, with crossings closer
+    // than the peak search, equal extremes, a channel off, and a core that
+    // stops short of the frames at hand. A sentinel without its record is
+    // noted.
+    #[test]
+    fn packed_scan_over_exceptions_alone_gives_the_events_of_the_microvolts() {
+        let (gain, offset, n_channels, n_frames) = (0.195_f64, 3.0_f64, 11, 9000);
+        let microvolts = |s: i16| ((s as f64 - offset) * gain) as f32;
+        let levels = [-microvolts(-150), microvolts(140), -microvolts(-400), f32::INFINITY];
+        let thresholds: Vec<f32> = (0..n_channels).map(|c| levels[c % 4]).collect();
+        let (low, high): (Vec<i32>, Vec<i32>) = thresholds
+            .iter()
+            .map(|&t| (i16_first_where(gain, offset, |v| v >= -t), i16_first_where(gain, offset, |v| v > t)))
+            .unzip();
+        let scan = Scan { start: 1, end: n_frames, negative: true, positive: true };
+        assert!(StoredScan { scan: &scan, low: &low, high: &high, n_channels }.only_exceptions_cross());
+        let mut state = 11u64;
+        let mut stored: Vec<i16> = (0..n_frames * n_channels)
+            .map(|_| {
+                state = state.wrapping_mul(6364136223846793005).wrapping_add(1442695040888963407);
+                [-151, -150, -149, -200, -200, -410, 139, 141, 160, 160, 0, -127, 127, -128, 128, 5]
+                    [(state >> 33) as usize % 16]
+            })
+            .collect();
+        // On channel 0, a crossing on the last frame of the first task run
+        // (frames 1..4097) whose extremum is the last frame within reach.
+        for (frame, value) in [(4095, 0), (4096, -151), (4097, -150), (4098, -150), (4099, -150), (4100, -410)] {
+            stored[frame * n_channels] = value;
+        }
+        let bytes: Vec<u8> = stored.iter().flat_map(|v| v.to_le_bytes()).collect();
+        let packed = PackedValues::new(&bytes);
+        let values: Vec<f32> = stored.iter().map(|&v| microvolts(v)).collect();
+        for polarity in [Polarity::Negative, Polarity::Positive, Polarity::Both] {
+            let run = |frames: Frames| {
+                let (mut last, mut out) = (vec![None; n_channels], Vec::new());
+                find_crossings(
+                    frames,
+                    n_channels,
+                    0,
+                    0..n_frames - 3,
+                    &thresholds,
+                    polarity,
+                    5,
+                    2,
+                    &mut last,
+                    &mut out,
+                );
+                out
+            };
+            let expected = run(Frames::Microvolts(&values));
+            assert!(expected.len() > 1000, "{polarity:?}: {}", expected.len());
+            assert_eq!(run(Frames::Packed { range: packed.range(), gain, offset }), expected, "{polarity:?}");
+        }
+        assert_eq!(packed.missing.load(std::sync::atomic::Ordering::Relaxed), 0);
+        let mut broken = packed;
+        let plain = (0..broken.bytes.len()).rev().find(|&i| broken.bytes[i] != 0x80).unwrap();
+        broken.bytes[plain] = 0x80;
+        let (mut last, mut out) = (vec![None; n_channels], Vec::new());
+        let frames = Frames::Packed { range: broken.range(), gain, offset };
+        find_crossings(frames, n_channels, 0, 0..n_frames, &thresholds, Polarity::Both, 5, 2, &mut last, &mut out);
+        assert_eq!(broken.missing.load(std::sync::atomic::Ordering::Relaxed), plain as u64 + 1);
     }
 
     /// i16 values packed as the filter stores them, readable as one range.
