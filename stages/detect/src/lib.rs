@@ -21,7 +21,7 @@ use arrow_schema::{DataType, Field, Schema, SchemaRef};
 use kernel::{Event, EventMerger};
 use params::{DetectParams, ValidDetectParams};
 use rayon::prelude::*;
-use spikeyard_contract::recording::frames_to_channel_major;
+use spikeyard_contract::recording::{frames_to_channel_major, Frames};
 use spikeyard_contract::table::{column, read_table, write_table, TableWriter};
 use spikeyard_contract::{
     noise, ContractError, ProgressReporter, Recording, RecordingError, StageFailure, StageReport, StageRequest,
@@ -50,7 +50,8 @@ pub fn events_schema() -> SchemaRef {
 }
 
 /// MAD noise σ per channel, µV: the median over spread windows of each
-/// window's median(|x|)/0.6745.
+/// window's median(|x|)/0.6745 (on a packed copy, counted:
+/// [`noise::packed_mad_sigmas`]).
 ///
 /// # Errors
 /// Reading the recording fails.
@@ -59,10 +60,14 @@ pub fn estimate_noise(recording: &Recording, windows: usize, window_frames: usiz
     let mut per_window: Vec<Vec<f32>> = vec![Vec::new(); n_channels];
     let (mut frames, mut columns) = (Vec::new(), Vec::new());
     for window in recording.spread_windows(windows, window_frames, 0) {
-        recording.visit_frames(window.core_start, window.core_end, &mut frames, |frames| {
-            frames_to_channel_major(&frames, n_channels, &mut columns)
-        })?;
-        let sigmas: Vec<f64> = columns.par_chunks_mut(window.core_frames()).map(noise::mad_sigma).collect();
+        let sigmas =
+            recording.visit_frames(window.core_start, window.core_end, &mut frames, |frames| match frames {
+                Frames::Packed { range, gain, offset } => noise::packed_mad_sigmas(range, n_channels, gain, offset),
+                frames => {
+                    frames_to_channel_major(&frames, n_channels, &mut columns);
+                    columns.par_chunks_mut(window.core_frames()).map(noise::mad_sigma).collect()
+                }
+            })?;
         for (list, sigma) in per_window.iter_mut().zip(sigmas) {
             list.push(sigma as f32);
         }
