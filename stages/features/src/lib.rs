@@ -118,8 +118,13 @@ impl<'a> Extractor<'a> {
 
     /// Features of one event with a fitted basis.
     pub fn features(&self, window: &EventWindow, event: &EventRecord, pca: &Pca) -> EventFeatures {
-        let k = self.params.n_components;
         let (centre, rows) = self.snippets(window, event);
+        self.features_of(event, centre, &rows, pca)
+    }
+
+    /// Features of one event from its centre and snippets ([`Extractor::snippets`]).
+    pub fn features_of(&self, event: &EventRecord, centre: f64, rows: &[Vec<f64>], pca: &Pca) -> EventFeatures {
+        let k = self.params.n_components;
         let mut features = vec![0.0f32; k * self.params.max_channels];
         for (rank, row) in rows.iter().enumerate() {
             pca.project(row, k, &mut features[rank * k..(rank + 1) * k]);
@@ -208,6 +213,14 @@ fn neighbourhoods_batch(neighbourhoods: &[Vec<(usize, f64)>]) -> RecordBatch {
     .expect("neighbourhood columns match their schema")
 }
 
+/// An event of the PCA's fitting subset: its centre, and where its
+/// snippets start among the fitting rows (they end where the next one's start).
+struct Fitted {
+    index: u64,
+    centre: f64,
+    first_row: usize,
+}
+
 /// Run the stage on a request.
 ///
 /// # Errors
@@ -222,20 +235,26 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     let margin = valid.before_frames.max(valid.after_frames) + 4;
     let metadata = request.table_metadata(EXECUTABLE, VERSION, &params);
 
-    // Fitting pass on a seeded subset.
+    // Fitting pass on a seeded subset. The fitted events' snippets are the
+    // PCA's rows; with their centres they are kept for the projection pass,
+    // which then does not cut them again.
     let mut events = EventStream::open(&events_path).map_err(StageFailure::bad_input)?;
     let n_events = events.n_events;
     let probability = (valid.fit_events as f64 / n_events.max(1) as f64).min(1.0);
     let mut fit_rows: Vec<Vec<f64>> = Vec::new();
+    let mut fitted: Vec<Fitted> = Vec::new();
     for_each_event_window(&recording, &mut events, &events_path, valid.chunk_frames, margin, |window| {
         // In parallel, collected in event order (the same rows whatever the threads).
-        let kept: Vec<Vec<Vec<f64>>> = window
+        let kept: Vec<_> = window
             .events
             .par_iter()
             .filter(|e| spikeyard_contract::sampling::keep(request.seed, SALT_PCA_FIT, e.index, probability))
-            .map(|event| extractor.snippets(window, event).1)
+            .map(|event| (event.index, extractor.snippets(window, event)))
             .collect();
-        fit_rows.extend(kept.into_iter().flatten());
+        for (index, (centre, rows)) in kept {
+            fitted.push(Fitted { index, centre, first_row: fit_rows.len() });
+            fit_rows.extend(rows);
+        }
         Ok::<(), StageFailure>(())
     })?;
     let width = valid.n_components * valid.max_channels;
@@ -260,7 +279,17 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     let mut progress = ProgressReporter::new(n_events, "events");
     let mut events = EventStream::open(&events_path).map_err(StageFailure::bad_input)?;
     for_each_event_window(&recording, &mut events, &events_path, valid.chunk_frames, margin, |window| {
-        let rows: Vec<EventFeatures> = window.events.par_iter().map(|e| extractor.features(window, e, &pca)).collect();
+        let rows: Vec<EventFeatures> = window
+            .events
+            .par_iter()
+            .map(|e| match fitted.binary_search_by_key(&e.index, |f| f.index) {
+                Ok(i) => {
+                    let end = fitted.get(i + 1).map_or(fit_rows.len(), |next| next.first_row);
+                    extractor.features_of(e, fitted[i].centre, &fit_rows[fitted[i].first_row..end], &pca)
+                }
+                Err(_) => extractor.features(window, e, &pca),
+            })
+            .collect();
         writer.write(&features_batch(&rows, width, recording.sample_rate_hz))?;
         progress.advance(rows.len() as u64);
         Ok::<(), StageFailure>(())
