@@ -2,6 +2,8 @@
 //! sample covariance (n − 1), with the cyclic Jacobi method: plain, exact to
 //! rounding, deterministic, and needs no LAPACK.
 
+use rayon::prelude::*;
+
 /// A fitted PCA.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Pca {
@@ -29,14 +31,22 @@ impl Pca {
         for m in mean.iter_mut() {
             *m /= n as f64;
         }
+        // The upper triangle, row i of it per task over a block of centred
+        // rows at a time: each entry adds its products in row order, as a
+        // single loop over the rows would, whatever the threads.
+        const BLOCK_ROWS: usize = 512;
         let mut covariance = vec![vec![0.0; dim]; dim];
-        for row in rows {
-            for i in 0..dim {
-                let di = row[i] - mean[i];
-                for j in i..dim {
-                    covariance[i][j] += di * (row[j] - mean[j]);
+        let mut centred = Vec::with_capacity(BLOCK_ROWS * dim);
+        for block in rows.chunks(BLOCK_ROWS) {
+            centred.clear();
+            centred.extend(block.iter().flat_map(|row| row.iter().zip(&mean).map(|(v, m)| v - m)));
+            covariance.par_iter_mut().enumerate().for_each(|(i, sums)| {
+                for d in centred.chunks_exact(dim) {
+                    for j in i..dim {
+                        sums[j] += d[i] * d[j];
+                    }
                 }
-            }
+            });
         }
         for i in 0..dim {
             for j in i..dim {
