@@ -213,12 +213,30 @@ fn neighbourhoods_batch(neighbourhoods: &[Vec<(usize, f64)>]) -> RecordBatch {
     .expect("neighbourhood columns match their schema")
 }
 
-/// An event of the PCA's fitting subset: its centre, and where its
-/// snippets start among the fitting rows (they end where the next one's start).
-struct Fitted {
-    index: u64,
-    centre: f64,
-    first_row: usize,
+/// The PCA's fitting subset: every fitted event's centre and snippets
+/// ([`Extractor::snippets`]), added in event order; the snippets of all of
+/// them are the PCA's rows.
+#[derive(Default)]
+struct FittedSnippets {
+    /// Per fitted event: its index, centre, and where its snippets start
+    /// in `rows` (they end where the next event's start).
+    events: Vec<(u64, f64, usize)>,
+    rows: Vec<Vec<f64>>,
+}
+
+impl FittedSnippets {
+    fn add(&mut self, index: u64, (centre, rows): (f64, Vec<Vec<f64>>)) {
+        self.events.push((index, centre, self.rows.len()));
+        self.rows.extend(rows);
+    }
+
+    /// The centre and snippets of event `index`, if it was fitted.
+    fn get(&self, index: u64) -> Option<(f64, &[Vec<f64>])> {
+        let i = self.events.binary_search_by_key(&index, |e| e.0).ok()?;
+        let (_, centre, first) = self.events[i];
+        let end = self.events.get(i + 1).map_or(self.rows.len(), |next| next.2);
+        Some((centre, &self.rows[first..end]))
+    }
 }
 
 /// Run the stage on a request.
@@ -241,8 +259,7 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     let mut events = EventStream::open(&events_path).map_err(StageFailure::bad_input)?;
     let n_events = events.n_events;
     let probability = (valid.fit_events as f64 / n_events.max(1) as f64).min(1.0);
-    let mut fit_rows: Vec<Vec<f64>> = Vec::new();
-    let mut fitted: Vec<Fitted> = Vec::new();
+    let mut fitted = FittedSnippets::default();
     for_each_event_window(&recording, &mut events, &events_path, valid.chunk_frames, margin, |window| {
         // In parallel, collected in event order (the same rows whatever the threads).
         let kept: Vec<_> = window
@@ -251,14 +268,13 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
             .filter(|e| spikeyard_contract::sampling::keep(request.seed, SALT_PCA_FIT, e.index, probability))
             .map(|event| (event.index, extractor.snippets(window, event)))
             .collect();
-        for (index, (centre, rows)) in kept {
-            fitted.push(Fitted { index, centre, first_row: fit_rows.len() });
-            fit_rows.extend(rows);
+        for (index, snippets) in kept {
+            fitted.add(index, snippets);
         }
         Ok::<(), StageFailure>(())
     })?;
     let width = valid.n_components * valid.max_channels;
-    let pca = match Pca::fit(&fit_rows, valid.snippet_frames()) {
+    let pca = match Pca::fit(&fitted.rows, valid.snippet_frames()) {
         Some(pca) => pca,
         None => {
             report.warn(format!("{n_events} events: too few to fit a PCA; the features table is empty"));
@@ -282,12 +298,9 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
         let rows: Vec<EventFeatures> = window
             .events
             .par_iter()
-            .map(|e| match fitted.binary_search_by_key(&e.index, |f| f.index) {
-                Ok(i) => {
-                    let end = fitted.get(i + 1).map_or(fit_rows.len(), |next| next.first_row);
-                    extractor.features_of(e, fitted[i].centre, &fit_rows[fitted[i].first_row..end], &pca)
-                }
-                Err(_) => extractor.features(window, e, &pca),
+            .map(|e| match fitted.get(e.index) {
+                Some((centre, rows)) => extractor.features_of(e, centre, rows, &pca),
+                None => extractor.features(window, e, &pca),
             })
             .collect();
         writer.write(&features_batch(&rows, width, recording.sample_rate_hz))?;
@@ -298,7 +311,33 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     let ratio = pca.explained_variance_ratio();
     let kept: f64 = ratio.iter().take(valid.n_components).filter(|r| r.is_finite()).sum();
     report.summary.insert("events".into(), n_events.into());
-    report.summary.insert("fit_snippets".into(), fit_rows.len().into());
+    report.summary.insert("fit_snippets".into(), fitted.rows.len().into());
     report.summary.insert("variance_explained_by_kept_components".into(), kept.into());
     Ok(report)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    // Each fitted event gets back its own centre and snippets, whatever
+    // their count; an event not fitted gets none.
+    #[test]
+    fn fitted_snippets_are_found_by_event() {
+        let mut fitted = FittedSnippets::default();
+        let snippets = |index: u64, count: usize| {
+            (index as f64 + 0.25, (0..count).map(|k| vec![index as f64, k as f64]).collect::<Vec<_>>())
+        };
+        for (index, count) in [(2, 3), (5, 1), (6, 7), (40, 2)] {
+            fitted.add(index, snippets(index, count));
+        }
+        for (index, count) in [(2, 3), (5, 1), (6, 7), (40, 2)] {
+            let (centre, rows) = snippets(index, count);
+            assert_eq!(fitted.get(index), Some((centre, &rows[..])), "event {index}");
+        }
+        for index in [0, 3, 7, 41] {
+            assert_eq!(fitted.get(index), None, "event {index}");
+        }
+        assert_eq!(fitted.rows.len(), 13);
+    }
 }
