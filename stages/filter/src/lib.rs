@@ -158,6 +158,29 @@ impl FrameEncoding<'_> {
     }
 }
 
+/// How a chunk's frames lie in a block's rows ([`FilterEngine::filter_block`]):
+/// `before` rows of extension first, `rows` in all, the core from `core_row`.
+struct BlockRows {
+    before: usize,
+    rows: usize,
+    core_row: usize,
+}
+
+impl BlockRows {
+    fn of(engine: &FilterEngine, chunk: &Chunk) -> BlockRows {
+        let margin = engine.margin_frames() as u64;
+        let pad_before = margin.saturating_sub(chunk.core_start - chunk.read_start) as usize;
+        let pad_after = margin.saturating_sub(chunk.read_end - chunk.core_end) as usize;
+        let n = chunk.read_frames();
+        let (before, after) = (pad_before.min(n.saturating_sub(1)), pad_after.min(n.saturating_sub(1)));
+        BlockRows {
+            before,
+            rows: before + n + after,
+            core_row: before + (chunk.core_start - chunk.read_start) as usize,
+        }
+    }
+}
+
 /// Read frames `chunk.read_start..read_end` and filter every channel, in
 /// parallel over blocks of channels (or channels, for FIR designs).
 ///
@@ -179,11 +202,10 @@ pub fn filter_chunk(
     filtered.core_frames = core_frames;
     if engine.supports_blocks() {
         filtered.columns.clear();
-        let n = chunk.read_frames();
-        let (before, after) = (pad_before.min(n.saturating_sub(1)), pad_after.min(n.saturating_sub(1)));
+        let BlockRows { before, rows, core_row } = BlockRows::of(engine, chunk);
         filtered.blocks.resize_with(n_channels.div_ceil(BLOCK_LANES), Vec::new);
-        for rows in filtered.blocks.iter_mut() {
-            rows.resize(before + n + after, [0.0; BLOCK_LANES]);
+        for block in filtered.blocks.iter_mut() {
+            block.resize(rows, [0.0; BLOCK_LANES]);
         }
         let (blocks, scratch) = (&mut filtered.blocks, &mut filtered.scratch);
         recording.visit_frames(chunk.read_start, chunk.read_end, scratch, |frames| {
@@ -192,7 +214,7 @@ pub fn filter_chunk(
                 .enumerate()
                 .for_each(|(b, rows)| engine.filter_block(&frames, n_channels, b * BLOCK_LANES, before, rows))
         })?;
-        filtered.core_row = before + core_offset;
+        filtered.core_row = core_row;
         return Ok(());
     }
     filtered.blocks.clear();
@@ -244,29 +266,27 @@ pub fn measure_qc(
     let mut filtered = FilteredChunk::default();
     let (mut raw, mut filtered_columns, mut raw_columns) = (Vec::new(), Vec::new(), Vec::new());
     for window in &windows {
-        filter_chunk(engine, recording, window, &mut filtered)?;
-        filtered.to_channel_major(&mut filtered_columns);
         recording.visit_frames(window.core_start, window.core_end, &mut raw, |frames| {
             frames_to_channel_major(&frames, n_channels, &mut raw_columns)
         })?;
-        let per_channel: Vec<(f64, f64, Vec<f64>, usize)> = filtered_columns
-            .par_chunks_mut(window_frames)
-            .zip(raw_columns.par_chunks(window_frames))
-            .map_init(Vec::new, |work, (column, raw_column)| {
-                let squares = qc::sum_in_lanes(column, |v| f64::from(v) * f64::from(v));
-                let sigma = noise::mad_sigma(column);
-                let mut psd = vec![0.0; welch.n_bins()];
-                let count = welch.accumulate(raw_column, &mut psd, work);
-                (sigma, squares, psd, count)
-            })
-            .collect();
-        for (channel, (sigma, squares, psd, count)) in per_channel.into_iter().enumerate() {
-            window_noise[channel].push(sigma as f32);
-            sum_squares[channel] += squares;
-            for (s, p) in psd_sums[channel].iter_mut().zip(psd) {
+        let per_channel = if engine.supports_blocks() {
+            window_by_blocks(engine, recording, window, &raw_columns, &welch, &mut raw)?
+        } else {
+            filter_chunk(engine, recording, window, &mut filtered)?;
+            filtered.to_channel_major(&mut filtered_columns);
+            filtered_columns
+                .par_chunks_mut(window_frames)
+                .zip(raw_columns.par_chunks(window_frames))
+                .map_init(Vec::new, |work, (column, raw_column)| WindowFigures::of(column, raw_column, &welch, work))
+                .collect()
+        };
+        for (channel, figures) in per_channel.into_iter().enumerate() {
+            window_noise[channel].push(figures.sigma as f32);
+            sum_squares[channel] += figures.squares;
+            for (s, p) in psd_sums[channel].iter_mut().zip(figures.psd) {
                 *s += p;
             }
-            segments[channel] += count;
+            segments[channel] += figures.segments;
         }
     }
     let total_frames = (windows.len() * window_frames) as f64;
@@ -279,6 +299,76 @@ pub fn measure_qc(
         .collect();
     let status = qc::classify(&noise_mad_uv, &rms_uv, params.dead_below_ratio, params.noisy_above_ratio);
     Ok(ChannelQc { noise_mad_uv, rms_uv, psd, welch, status })
+}
+
+/// One channel's QC figures on one window.
+struct WindowFigures {
+    /// MAD noise of the filtered signal, µV.
+    sigma: f64,
+    /// Sum of the filtered signal's squares, µV².
+    squares: f64,
+    /// Sum of the raw signal's segment periodograms ([`Welch::accumulate`]).
+    psd: Vec<f64>,
+    segments: usize,
+}
+
+impl WindowFigures {
+    /// From the window's filtered (reordered here) and raw values.
+    fn of(filtered: &mut [f32], raw: &[f32], welch: &Welch, work: &mut Vec<rustfft::num_complex::Complex64>) -> Self {
+        let squares = qc::sum_in_lanes(filtered, |v| f64::from(v) * f64::from(v));
+        let sigma = noise::mad_sigma(filtered);
+        let mut psd = vec![0.0; welch.n_bins()];
+        let segments = welch.accumulate(raw, &mut psd, work);
+        WindowFigures { sigma, squares, psd, segments }
+    }
+}
+
+/// [`WindowFigures`] of every channel on one window, given its raw core
+/// channel-major (`raw_columns`), a block of [`BLOCK_LANES`] channels per
+/// task: the block filtered as the main pass filters it ([`filter_chunk`]),
+/// its core moved to one column per channel. Only a block's rows and
+/// columns are held per thread, not the whole window's filtered values
+/// twice over (once in blocks, once by channel).
+fn window_by_blocks(
+    engine: &FilterEngine,
+    recording: &Recording,
+    window: &Chunk,
+    raw_columns: &[f32],
+    welch: &Welch,
+    scratch: &mut Vec<f32>,
+) -> Result<Vec<WindowFigures>, RecordingError> {
+    let n_channels = recording.n_channels;
+    let BlockRows { before, rows, core_row } = BlockRows::of(engine, window);
+    let core = window.core_frames();
+    #[derive(Default)]
+    struct BlockScratch {
+        rows: Vec<Lanes>,
+        columns: Vec<f32>,
+        work: Vec<rustfft::num_complex::Complex64>,
+    }
+    recording.visit_frames(window.read_start, window.read_end, scratch, |frames| {
+        let per_block: Vec<Vec<WindowFigures>> = (0..n_channels.div_ceil(BLOCK_LANES))
+            .into_par_iter()
+            .map_init(BlockScratch::default, |s, b| {
+                let (first, lanes) = (b * BLOCK_LANES, BLOCK_LANES.min(n_channels - b * BLOCK_LANES));
+                s.rows.resize(rows, [0.0; BLOCK_LANES]);
+                engine.filter_block(&frames, n_channels, first, before, &mut s.rows);
+                s.columns.resize(lanes * core, 0.0);
+                for (k, row) in s.rows[core_row..core_row + core].iter().enumerate() {
+                    for (lane, &v) in row[..lanes].iter().enumerate() {
+                        s.columns[lane * core + k] = v;
+                    }
+                }
+                let BlockScratch { columns, work, .. } = s;
+                columns
+                    .chunks_mut(core)
+                    .zip(raw_columns[first * core..].chunks(core))
+                    .map(|(column, raw_column)| WindowFigures::of(column, raw_column, welch, work))
+                    .collect()
+            })
+            .collect();
+        per_block.into_iter().flatten().collect()
+    })
 }
 
 fn qc_tables(recording: &Recording, params: &ValidFilterParams, qc: &ChannelQc) -> (RecordBatch, RecordBatch) {
@@ -557,6 +647,45 @@ mod tests {
             // The recursions run in f32 (round-off near 1e-4 of the rms, which
             // differs between chunkings); a chunking fault is of the order of the rms.
             assert!(worst / rms < 2e-3, "{params:?}: worst {worst}, rms {rms}");
+        }
+    }
+
+    // QC block by block gives the figures of the whole window filtered and
+    // turned channel-major, on windows at both ends of the recording (their
+    // margins clipped) and inside it, over a full block and a partial one.
+    #[test]
+    fn qc_by_blocks_equals_qc_on_the_whole_window() {
+        let dir = tempfile::tempdir().unwrap();
+        let fs = 20000.0;
+        let n_channels = BLOCK_LANES + 5;
+        let recording = noisy_recording(dir.path(), fs, n_channels, 1.5);
+        let valid = FilterParams::default().check(fs).unwrap();
+        let engine = FilterEngine::new(&valid, fs);
+        assert!(engine.supports_blocks());
+        let windows = recording.spread_windows(3, 4000, engine.margin_frames());
+        let welch = Welch::new(Welch::segment_for(fs, PSD_RESOLUTION_HZ, 4000), fs);
+        let (mut filtered, mut columns, mut raw, mut scratch) = (FilteredChunk::default(), vec![], vec![], vec![]);
+        for window in &windows {
+            filter_chunk(&engine, &recording, window, &mut filtered).unwrap();
+            filtered.to_channel_major(&mut columns);
+            recording.read_frames(window.core_start, window.core_end, &mut scratch).unwrap();
+            to_channel_major(&scratch, n_channels, &mut raw);
+            let by_blocks = window_by_blocks(&engine, &recording, window, &raw, &welch, &mut scratch).unwrap();
+            assert_eq!(by_blocks.len(), n_channels);
+            let core = window.core_frames();
+            for (c, figures) in by_blocks.iter().enumerate() {
+                let expected = WindowFigures::of(
+                    &mut columns[c * core..(c + 1) * core],
+                    &raw[c * core..(c + 1) * core],
+                    &welch,
+                    &mut vec![],
+                );
+                assert_eq!(
+                    (figures.sigma, figures.squares, &figures.psd, figures.segments),
+                    (expected.sigma, expected.squares, &expected.psd, expected.segments),
+                    "window {window:?}, channel {c}"
+                );
+            }
         }
     }
 
