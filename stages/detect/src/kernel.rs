@@ -302,7 +302,8 @@ impl StoredScan<'_> {
     ) -> Vec<Crossing> {
         let n = self.n_channels;
         let frames = self.scan.frames_from(from);
-        let reach = (frames.end - 1 + peaks.frames).min(peaks.n_frames);
+        // The run's own frames, and as far on as its last crossing's extremum can lie.
+        let reach = (frames.end - 1 + peaks.frames.max(1)).min(peaks.n_frames);
         // Per channel: the frame and value of its last exception, and its
         // crossings whose extremum is still looked for (indices into `found`).
         let mut last = vec![(usize::MAX, 0i32); n];
@@ -569,26 +570,19 @@ mod tests {
         let bytes: Vec<u8> = stored.iter().flat_map(|v| v.to_le_bytes()).collect();
         let packed = PackedValues::new(&bytes);
         let values: Vec<f32> = stored.iter().map(|&v| microvolts(v)).collect();
-        for polarity in [Polarity::Negative, Polarity::Positive, Polarity::Both] {
+        // A peak search of 0 frames keeps the crossing's own value.
+        let cases = [(Polarity::Negative, 5), (Polarity::Positive, 5), (Polarity::Both, 5), (Polarity::Both, 0)];
+        for (polarity, peak) in cases {
             let run = |frames: Frames| {
                 let (mut last, mut out) = (vec![None; n_channels], Vec::new());
-                find_crossings(
-                    frames,
-                    n_channels,
-                    0,
-                    0..n_frames - 3,
-                    &thresholds,
-                    polarity,
-                    5,
-                    2,
-                    &mut last,
-                    &mut out,
-                );
+                let core = 0..n_frames - 3;
+                find_crossings(frames, n_channels, 0, core, &thresholds, polarity, peak, 2, &mut last, &mut out);
                 out
             };
             let expected = run(Frames::Microvolts(&values));
             assert!(expected.len() > 1000, "{polarity:?}: {}", expected.len());
-            assert_eq!(run(Frames::Packed { range: packed.range(), gain, offset }), expected, "{polarity:?}");
+            let packed_events = run(Frames::Packed { range: packed.range(), gain, offset });
+            assert_eq!(packed_events, expected, "{polarity:?}, peak search {peak}");
         }
         assert_eq!(packed.missing.load(std::sync::atomic::Ordering::Relaxed), 0);
         let mut broken = packed;
