@@ -166,11 +166,19 @@ struct BlockRows {
     core_row: usize,
 }
 
+/// Frames of extension the filter's margin needs before and after a chunk
+/// beyond those it could read (at the recording's ends).
+fn padding(engine: &FilterEngine, chunk: &Chunk) -> (usize, usize) {
+    let margin = engine.margin_frames() as u64;
+    (
+        margin.saturating_sub(chunk.core_start - chunk.read_start) as usize,
+        margin.saturating_sub(chunk.read_end - chunk.core_end) as usize,
+    )
+}
+
 impl BlockRows {
     fn of(engine: &FilterEngine, chunk: &Chunk) -> BlockRows {
-        let margin = engine.margin_frames() as u64;
-        let pad_before = margin.saturating_sub(chunk.core_start - chunk.read_start) as usize;
-        let pad_after = margin.saturating_sub(chunk.read_end - chunk.core_end) as usize;
+        let (pad_before, pad_after) = padding(engine, chunk);
         let n = chunk.read_frames();
         let (before, after) = (pad_before.min(n.saturating_sub(1)), pad_after.min(n.saturating_sub(1)));
         BlockRows {
@@ -193,10 +201,6 @@ pub fn filter_chunk(
     filtered: &mut FilteredChunk,
 ) -> Result<(), RecordingError> {
     let n_channels = recording.n_channels;
-    let margin = engine.margin_frames() as u64;
-    let core_offset = (chunk.core_start - chunk.read_start) as usize;
-    let pad_before = margin.saturating_sub(chunk.core_start - chunk.read_start) as usize;
-    let pad_after = margin.saturating_sub(chunk.read_end - chunk.core_end) as usize;
     let core_frames = chunk.core_frames();
     filtered.n_channels = n_channels;
     filtered.core_frames = core_frames;
@@ -218,6 +222,8 @@ pub fn filter_chunk(
         return Ok(());
     }
     filtered.blocks.clear();
+    let ((pad_before, pad_after), core_offset) =
+        (padding(engine, chunk), (chunk.core_start - chunk.read_start) as usize);
     let (mut raw, mut by_channel) = (Vec::new(), Vec::new());
     recording.read_frames(chunk.read_start, chunk.read_end, &mut raw)?;
     to_channel_major(&raw, n_channels, &mut by_channel);
