@@ -272,27 +272,29 @@ impl PackedRange<'_> {
     }
 }
 
-/// i16 little-endian values to one byte each: the value when within
-/// ±127, else the sentinel. Built for AVX-512 or AVX2 when the CPU has them
-/// (`wide_build!`), with the same bytes out.
-struct Narrowing;
-
-impl Narrowing {
-    fn run(&self, values: &[u8], bytes: &mut [u8]) {
-        crate::wide_build!(Narrowing, self.run_portable(values: &[u8], bytes: &mut [u8]) -> ())
+/// `values` to one byte each into `bytes` (the value when within ±127,
+/// else [`SENTINEL`]), appending `(first + k, value)` to `outside` for each
+/// value `k` that needs an exception record. Always inlined, so the
+/// narrowing vectorizes with the caller's instruction set.
+#[inline(always)]
+pub fn narrow(values: &[i16], bytes: &mut [u8], first: u64, outside: &mut Vec<(u64, i16)>) {
+    debug_assert_eq!(values.len(), bytes.len());
+    for (v, b) in values.iter().zip(bytes.iter_mut()) {
+        *b = if (-127..=127).contains(v) { *v as i8 as u8 } else { SENTINEL };
     }
-
-    #[inline(always)]
-    fn run_portable(&self, values: &[u8], bytes: &mut [u8]) {
-        for (v, b) in values.as_chunks::<2>().0.iter().zip(bytes.iter_mut()) {
-            let v = i16::from_le_bytes(*v);
-            *b = if (-127..=127).contains(&v) { v as i8 as u8 } else { SENTINEL };
+    for (t, tile) in bytes.chunks(TILE).enumerate() {
+        let mut mask = sentinel_mask(tile);
+        while mask != 0 {
+            let k = t * TILE + mask.trailing_zeros() as usize;
+            mask &= mask - 1;
+            outside.push((first + k as u64, values[k]));
         }
     }
 }
 
-/// Packs i16 values into bytes, exception records and index entries, a
-/// piece at a time, keeping count of the values and records so far.
+/// Turns the values a piece could not hold in a byte into exception
+/// records and index entries, a piece at a time, keeping count of the
+/// values and records so far.
 #[derive(Debug, Default)]
 pub struct Packer {
     values: u64,
@@ -304,33 +306,42 @@ impl Packer {
     /// records of the values outside −127..=127 appended to `records`, and
     /// an index entry appended to `index` for each block that starts here.
     pub fn pack(&mut self, values: &[u8], bytes: &mut Vec<u8>, records: &mut Vec<u8>, index: &mut Vec<u8>) {
-        bytes.resize(values.len() / 2, 0);
-        // The bytes first (vectorized), then the values that need a record
-        // are those whose byte is the sentinel.
-        Narrowing.run(values, bytes);
-        let (mut values, mut out) = (values, bytes.as_mut_slice());
-        while !out.is_empty() {
-            let position = self.values % BLOCK_VALUES;
-            if position == 0 {
+        let values: Vec<i16> = values.as_chunks::<2>().0.iter().map(|v| i16::from_le_bytes(*v)).collect();
+        bytes.resize(values.len(), 0);
+        let mut outside = Vec::new();
+        narrow(&values, bytes, 0, &mut outside);
+        self.add(values.len() as u64, outside, records, index);
+    }
+
+    /// The records and index entries of the next `n_values` values, already
+    /// narrowed ([`narrow`]): `outside` gives each value that needs a record
+    /// as (its place among these `n_values`, ascending; its value).
+    pub fn add(
+        &mut self,
+        n_values: u64,
+        outside: impl IntoIterator<Item = (u64, i16)>,
+        records: &mut Vec<u8>,
+        index: &mut Vec<u8>,
+    ) {
+        let end = self.values + n_values;
+        // The first block that starts here or later.
+        let mut next_block = self.values.div_ceil(BLOCK_VALUES) * BLOCK_VALUES;
+        for (k, value) in outside {
+            let global = self.values + k;
+            debug_assert!(global < end && value.unsigned_abs() >= 128);
+            while next_block <= global {
                 index.extend_from_slice(&self.records.to_le_bytes());
+                next_block += BLOCK_VALUES;
             }
-            // Up to the end of this block.
-            let n = ((BLOCK_VALUES - position) as usize).min(out.len());
-            let (segment, rest) = std::mem::take(&mut out).split_at_mut(n);
-            for (t, (tile, bytes)) in values[..2 * n].chunks(2 * TILE).zip(segment.chunks(TILE)).enumerate() {
-                let mut outside = sentinel_mask(bytes);
-                while outside != 0 {
-                    let l = outside.trailing_zeros() as usize;
-                    outside &= outside - 1;
-                    records.extend_from_slice(&((position as usize + t * TILE + l) as u16).to_le_bytes());
-                    records.extend_from_slice(&tile[2 * l..2 * l + 2]);
-                    self.records += 1;
-                }
-            }
-            self.values += n as u64;
-            values = &values[2 * n..];
-            out = rest;
+            records.extend_from_slice(&((global % BLOCK_VALUES) as u16).to_le_bytes());
+            records.extend_from_slice(&value.to_le_bytes());
+            self.records += 1;
         }
+        while next_block < end {
+            index.extend_from_slice(&self.records.to_le_bytes());
+            next_block += BLOCK_VALUES;
+        }
+        self.values = end;
     }
 
     /// The index's last entry (the number of records), once every value is packed.
@@ -345,19 +356,21 @@ mod tests {
     use std::sync::atomic::{AtomicU64, Ordering};
 
     // Every i16 narrows to itself within ±127 and to the sentinel beyond,
-    // on the path this CPU runs and on the portable one.
+    // and exactly those beyond are listed, in order, from `first` on.
     #[test]
-    fn narrowing_keeps_small_values_and_marks_the_rest() {
+    fn narrowing_keeps_small_values_and_lists_the_rest() {
         let all: Vec<i16> = (i16::MIN..=i16::MAX).collect();
-        let le: Vec<u8> = all.iter().flat_map(|v| v.to_le_bytes()).collect();
-        let (mut wide, mut portable) = (vec![0u8; all.len()], vec![1u8; all.len()]);
-        Narrowing.run(&le, &mut wide);
-        Narrowing.run_portable(&le, &mut portable);
-        assert_eq!(wide, portable);
-        for (v, b) in all.iter().zip(&wide) {
+        let (mut bytes, mut outside) = (vec![1u8; all.len()], vec![(0, 0)]);
+        narrow(&all, &mut bytes, 5, &mut outside);
+        let mut expected_outside = vec![(0, 0)];
+        for (k, (v, b)) in all.iter().zip(&bytes).enumerate() {
             let expected = if (-127..=127).contains(v) { *v as i8 as u8 } else { SENTINEL };
             assert_eq!(*b, expected, "{v}");
+            if expected == SENTINEL {
+                expected_outside.push((5 + k as u64, *v));
+            }
         }
+        assert_eq!(outside, expected_outside);
     }
 
     /// Pack `values` in pieces of `piece` values.

@@ -1032,57 +1032,69 @@ pub struct SampleEncoder {
 }
 
 impl SampleEncoder {
+    /// Bytes each sample takes in the data file.
     pub fn bytes_per_sample(&self) -> usize {
         match self.storage {
             Storage::F32 => 4,
-            Storage::I16 { .. } | Storage::PackedI16 { .. } => 2,
+            Storage::I16 { .. } => 2,
+            Storage::PackedI16 { .. } => 1,
         }
     }
 
     /// Encode `samples` into `out` (`bytes_per_sample()` bytes each, little
-    /// endian); returns how many were clipped to the i16 range.
-    #[inline]
-    pub fn encode(&self, samples: &[f32], out: &mut [u8]) -> u64 {
+    /// endian); returns how many were clipped to the i16 range. Packed
+    /// storage narrows each i16 to a byte ([`packed::narrow`]) and appends
+    /// to `outside` the values that need an exception record, each as
+    /// (`first` + its place in `samples`, its value), for
+    /// [`RecordingWriter::write_encoded`]; other storages leave it alone.
+    /// Always inlined, so it vectorizes with the caller's instruction set.
+    #[inline(always)]
+    pub fn encode(&self, samples: &[f32], out: &mut [u8], first: u64, outside: &mut Vec<(u64, i16)>) -> u64 {
         debug_assert_eq!(out.len(), samples.len() * self.bytes_per_sample());
-        match self.storage {
+        let microvolts_per_unit = match self.storage {
             Storage::F32 => {
                 for (v, o) in samples.iter().zip(out.chunks_exact_mut(4)) {
                     o.copy_from_slice(&v.to_le_bytes());
                 }
-                0
+                return 0;
             }
-            Storage::I16 { microvolts_per_unit } | Storage::PackedI16 { microvolts_per_unit } => {
-                let scale = (1.0 / microvolts_per_unit) as f32;
-                // Adding 1.5·2²³ rounds an f32 of magnitude below 2²² to the
-                // nearest integer (ties to even), which then sits in the low
-                // bits of the sum: integer steps only, no float-to-int cast
-                // (whose saturating rule keeps the loop from vectorizing).
-                const ROUNDER: f32 = 12_582_912.0;
-                let rounder_bits = ROUNDER.to_bits() as i32;
-                let encode = |samples: &[f32], out: &mut [u8]| -> u32 {
-                    let mut clipped = 0;
-                    for (v, o) in samples.iter().zip(out.chunks_exact_mut(2)) {
-                        let units = v * scale;
-                        clipped += u32::from(!(-32767.0..=32767.0).contains(&units));
-                        let units = if units.is_nan() { 0.0 } else { units.clamp(-32767.0, 32767.0) };
-                        let rounded = ((units + ROUNDER).to_bits() as i32 - rounder_bits) as i16;
-                        o.copy_from_slice(&rounded.to_le_bytes());
-                    }
-                    clipped
-                };
-                // Tiles of a fixed size, which the compiler turns into SIMD.
-                const TILE: usize = 32;
-                let mut clipped = 0u64;
-                let tiled = samples.len() / TILE * TILE;
-                let (samples, samples_rest) = samples.split_at(tiled);
-                let (out, out_rest) = out.split_at_mut(2 * tiled);
-                for (s, o) in samples.chunks_exact(TILE).zip(out.chunks_exact_mut(2 * TILE)) {
-                    let (s, o): (&[f32; TILE], &mut [u8; 2 * TILE]) = (s.try_into().unwrap(), o.try_into().unwrap());
-                    clipped += u64::from(encode(s, o));
+            Storage::I16 { microvolts_per_unit } | Storage::PackedI16 { microvolts_per_unit } => microvolts_per_unit,
+        };
+        let scale = (1.0 / microvolts_per_unit) as f32;
+        // Adding 1.5·2²³ rounds an f32 of magnitude below 2²² to the
+        // nearest integer (ties to even), which then sits in the low bits of
+        // the sum: integer steps only, no float-to-int cast (whose saturating
+        // rule keeps the loop from vectorizing).
+        const ROUNDER: f32 = 12_582_912.0;
+        let rounder_bits = ROUNDER.to_bits() as i32;
+        let to_units = |samples: &[f32], units: &mut [i16]| -> u32 {
+            let mut clipped = 0;
+            for (v, u) in samples.iter().zip(units.iter_mut()) {
+                let v = v * scale;
+                clipped += u32::from(!(-32767.0..=32767.0).contains(&v));
+                let v = if v.is_nan() { 0.0 } else { v.clamp(-32767.0, 32767.0) };
+                *u = ((v + ROUNDER).to_bits() as i32 - rounder_bits) as i16;
+            }
+            clipped
+        };
+        let packed = matches!(self.storage, Storage::PackedI16 { .. });
+        let bytes = self.bytes_per_sample();
+        // Tiles of a fixed size, which the compiler turns into SIMD.
+        const TILE: usize = 64;
+        let mut units = [0i16; TILE];
+        let mut clipped = 0u64;
+        for (t, (samples, out)) in samples.chunks(TILE).zip(out.chunks_mut(TILE * bytes)).enumerate() {
+            let units = &mut units[..samples.len()];
+            clipped += u64::from(to_units(samples, units));
+            if packed {
+                packed::narrow(units, out, first + (t * TILE) as u64, outside);
+            } else {
+                for (u, o) in units.iter().zip(out.chunks_exact_mut(2)) {
+                    o.copy_from_slice(&u.to_le_bytes());
                 }
-                clipped + u64::from(encode(samples_rest, out_rest))
             }
         }
+        clipped
     }
 }
 
@@ -1102,7 +1114,7 @@ pub struct RecordingWriter {
     /// the packed bytes, records and index entries.
     exceptions: Option<(std::io::BufWriter<File>, std::io::BufWriter<File>)>,
     packer: packed::Packer,
-    packed: Vec<u8>,
+    outside: Vec<(u64, i16)>,
     records: Vec<u8>,
     index: Vec<u8>,
     /// Bytes written so far, and how many of them the disk was asked to
@@ -1141,7 +1153,7 @@ impl RecordingWriter {
             bytes: Vec::new(),
             exceptions,
             packer: packed::Packer::default(),
-            packed: Vec::new(),
+            outside: Vec::new(),
             records: Vec::new(),
             index: Vec::new(),
             written: 0,
@@ -1161,31 +1173,37 @@ impl RecordingWriter {
     pub fn write_frames(&mut self, samples: &[f32]) -> std::io::Result<()> {
         debug_assert_eq!(samples.len() % self.n_channels, 0);
         let encoder = self.encoder();
-        let mut bytes = std::mem::take(&mut self.bytes);
+        let (mut bytes, mut outside) = (std::mem::take(&mut self.bytes), std::mem::take(&mut self.outside));
         bytes.resize(samples.len() * encoder.bytes_per_sample(), 0);
-        let clipped = encoder.encode(samples, &mut bytes);
-        let written = self.write_encoded(&bytes, clipped);
-        self.bytes = bytes;
+        outside.clear();
+        let clipped = encoder.encode(samples, &mut bytes, 0, &mut outside);
+        let written = self.write_encoded(&bytes, outside.iter().copied(), clipped);
+        (self.bytes, self.outside) = (bytes, outside);
         written
     }
 
     /// Append frames already encoded by [`RecordingWriter::encoder`], of
-    /// which `clipped` samples were clipped.
-    pub fn write_encoded(&mut self, bytes: &[u8], clipped: u64) -> std::io::Result<()> {
+    /// which `clipped` samples were clipped; for packed storage, `outside`
+    /// lists the values that need an exception record as
+    /// [`SampleEncoder::encode`] gave them, places counted from the first
+    /// value of `bytes` (empty for other storages).
+    pub fn write_encoded(
+        &mut self,
+        bytes: &[u8],
+        outside: impl IntoIterator<Item = (u64, i16)>,
+        clipped: u64,
+    ) -> std::io::Result<()> {
         use std::io::Write;
-        debug_assert_eq!(bytes.len() % (self.n_channels * self.encoder().bytes_per_sample()), 0);
+        let bytes_per_sample = self.encoder().bytes_per_sample();
+        debug_assert_eq!(bytes.len() % (self.n_channels * bytes_per_sample), 0);
         self.clipped += clipped;
-        let bytes = match &mut self.exceptions {
-            Some((exceptions, index)) => {
-                self.records.clear();
-                self.index.clear();
-                self.packer.pack(bytes, &mut self.packed, &mut self.records, &mut self.index);
-                exceptions.write_all(&self.records)?;
-                index.write_all(&self.index)?;
-                &self.packed
-            }
-            None => bytes,
-        };
+        if let Some((exceptions, index)) = &mut self.exceptions {
+            self.records.clear();
+            self.index.clear();
+            self.packer.add((bytes.len() / bytes_per_sample) as u64, outside, &mut self.records, &mut self.index);
+            exceptions.write_all(&self.records)?;
+            index.write_all(&self.index)?;
+        }
         self.data.write_all(bytes)?;
         self.written += bytes.len() as u64;
         // Start the disk writes every so often instead of leaving gigabytes
@@ -1612,8 +1630,10 @@ mod transpose_tests {
         let mut samples: Vec<f32> = vec![0.25, 0.75, 1.25, -0.25, -0.75, -1.25, 0.0, -0.0, 16383.75, -16383.75];
         samples.extend([20000.0, -20000.0, f32::NAN, f32::INFINITY, f32::NEG_INFINITY]);
         samples.extend((0..200).map(|i| (i as f32 - 100.0) * 0.123_45));
+        // 200, −128 and 127 steps: the first two need a byte's sentinel.
+        samples.extend([100.0, -64.0, 63.5]);
         let mut bytes = vec![0u8; 2 * samples.len()];
-        let clipped = encoder.encode(&samples, &mut bytes);
+        let clipped = encoder.encode(&samples, &mut bytes, 0, &mut Vec::new());
         let expected: Vec<i16> = samples
             .iter()
             .map(|&v| {
@@ -1631,6 +1651,22 @@ mod transpose_tests {
         // ±16383.75 µV (32767.5 steps), ±20000 µV, NaN and ±∞ are beyond
         // ±32767 steps of 0.5 µV.
         assert_eq!(clipped, 7);
+        // Packed: the same values, a byte each where they fit, the others
+        // listed with their place counted from `first`, across tiles.
+        let packed = SampleEncoder { storage: Storage::PackedI16 { microvolts_per_unit: 0.5 } };
+        let (mut bytes, mut outside) = (vec![0u8; samples.len()], Vec::new());
+        assert_eq!(packed.encode(&samples, &mut bytes, 1000, &mut outside), 7);
+        let listed: Vec<(u64, i16)> = expected
+            .iter()
+            .enumerate()
+            .filter(|(_, v)| !(-127..=127).contains(*v))
+            .map(|(k, v)| (1000 + k as u64, *v))
+            .collect();
+        assert_eq!(outside, listed);
+        assert!(listed.iter().any(|(k, _)| *k >= 1064), "some beyond the first tile");
+        for (b, v) in bytes.iter().zip(&expected) {
+            assert_eq!(*b, if (-127..=127).contains(v) { *v as i8 as u8 } else { crate::packed::SENTINEL });
+        }
     }
 
     #[test]

@@ -122,23 +122,20 @@ impl FrameEncoding<'_> {
     const TILE_FRAMES: usize = 128;
 
     /// Frames `first..` of the core into `out`, as many as it holds; returns
-    /// how many samples were clipped. Built for AVX-512 or AVX2 when the CPU
+    /// how many samples were clipped. The values a packed copy holds as
+    /// exceptions go to `outside`, placed among the core's values
+    /// ([`SampleEncoder::encode`]). Built for AVX-512 or AVX2 when the CPU
     /// has them (`spikeyard_contract::wide_build!`), with the same bytes out.
-    fn encode(&self, first: usize, out: &mut [u8], tile: &mut Vec<f32>, scratch: &mut ReferenceScratch) -> u64 {
+    fn encode(&self, first: usize, out: &mut [u8], work: &mut EncodingWork) -> u64 {
         spikeyard_contract::wide_build!(
             FrameEncoding<'_>,
-            self.encode_portable(first: usize, out: &mut [u8], tile: &mut Vec<f32>, scratch: &mut ReferenceScratch) -> u64
+            self.encode_portable(first: usize, out: &mut [u8], work: &mut EncodingWork) -> u64
         )
     }
 
     #[inline(always)]
-    fn encode_portable(
-        &self,
-        first: usize,
-        out: &mut [u8],
-        tile: &mut Vec<f32>,
-        scratch: &mut ReferenceScratch,
-    ) -> u64 {
+    fn encode_portable(&self, first: usize, out: &mut [u8], work: &mut EncodingWork) -> u64 {
+        let EncodingWork { tile, reference: scratch, outside } = work;
         let n = self.filtered.n_channels;
         let frame_bytes = n * self.encoder.bytes_per_sample();
         let mut clipped = 0;
@@ -147,15 +144,35 @@ impl FrameEncoding<'_> {
             let count = out.len() / frame_bytes;
             tile.resize(count * n, 0.0);
             self.filtered.rows_into(first + t * Self::TILE_FRAMES, count, tile);
-            for (row, out) in tile.chunks_exact_mut(n).zip(out.chunks_exact_mut(frame_bytes)) {
+            let tile_first = first + t * Self::TILE_FRAMES;
+            for (k, (row, out)) in tile.chunks_exact_mut(n).zip(out.chunks_exact_mut(frame_bytes)).enumerate() {
                 if let Some(reference) = self.reference {
                     reference.subtract(row, scratch);
                 }
-                clipped += self.encoder.encode(row, out);
+                clipped += self.encoder.encode(row, out, ((tile_first + k) * n) as u64, outside);
             }
         }
         clipped
     }
+}
+
+/// One encoding task's buffers: the frames it turns back to time-major,
+/// the reference's state, and the values it lists for exception records.
+#[derive(Default)]
+struct EncodingWork {
+    tile: Vec<f32>,
+    reference: ReferenceScratch,
+    outside: Vec<(u64, i16)>,
+}
+
+/// A chunk's bytes for the filtered copy, with each encoding task's
+/// buffers (its exception values among them), on their way to the writer
+/// thread and back for reuse.
+#[derive(Default)]
+struct EncodedChunk {
+    bytes: Vec<u8>,
+    tasks: Vec<EncodingWork>,
+    clipped: u64,
 }
 
 /// How a chunk's frames lie in a block's rows ([`FilterEngine::filter_block`]):
@@ -514,13 +531,14 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     let frame_bytes = recording.n_channels * encoder.bytes_per_sample();
     // A writer thread writes chunk k while chunk k + 1 is read and filtered;
     // at most two encoded chunks are in flight, and their buffers are reused.
-    let (to_writer, written) = std::sync::mpsc::sync_channel::<(Vec<u8>, u64)>(1);
-    let (recycle, recycled) = std::sync::mpsc::channel::<Vec<u8>>();
+    let (to_writer, written) = std::sync::mpsc::sync_channel::<EncodedChunk>(1);
+    let (recycle, recycled) = std::sync::mpsc::channel::<EncodedChunk>();
     let (filtering, writing) = std::thread::scope(|scope| {
         let writer_thread = scope.spawn(move || -> std::io::Result<RecordingWriter> {
-            for (bytes, clipped) in written {
-                writer.write_encoded(&bytes, clipped)?;
-                let _ = recycle.send(bytes);
+            for encoded in written {
+                let outside = encoded.tasks.iter().flat_map(|task| task.outside.iter().copied());
+                writer.write_encoded(&encoded.bytes, outside, encoded.clipped)?;
+                let _ = recycle.send(encoded);
             }
             Ok(writer)
         });
@@ -532,25 +550,25 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
             })?;
             // Back to time-major, referenced and encoded, in parallel over runs of frames.
             const FRAMES_PER_TASK: usize = 1024;
-            let mut bytes = recycled.try_recv().unwrap_or_default();
-            bytes.resize(filtered.core_frames() * frame_bytes, 0);
+            let mut encoded = recycled.try_recv().unwrap_or_default();
+            encoded.bytes.resize(filtered.core_frames() * frame_bytes, 0);
+            let n_tasks = filtered.core_frames().div_ceil(FRAMES_PER_TASK);
+            encoded.tasks.resize_with(n_tasks, EncodingWork::default);
             let filtered = &filtered;
-            let clipped: u64 = bytes
+            encoded.clipped = encoded
+                .bytes
                 .par_chunks_mut(frame_bytes * FRAMES_PER_TASK)
+                .zip(encoded.tasks.par_iter_mut())
                 .enumerate()
-                .map_init(
-                    || (Vec::new(), ReferenceScratch::default()),
-                    |(tile, scratch), (task, out)| {
-                        let frames = FrameEncoding { filtered, reference: reference.as_ref(), encoder: &encoder };
-                        frames.encode(task * FRAMES_PER_TASK, out, tile, scratch)
-                    },
-                )
+                .map(|(task, (out, work))| {
+                    work.outside.clear();
+                    let frames = FrameEncoding { filtered, reference: reference.as_ref(), encoder: &encoder };
+                    frames.encode(task * FRAMES_PER_TASK, out, work)
+                })
                 .sum();
             progress.advance(chunk.core_frames() as u64);
             // A closed channel means the writer failed: stop; its own error is reported below.
-            to_writer
-                .send((bytes, clipped))
-                .map_err(|_| output(std::io::Error::other("the writer stopped"), "filtered.bin"))
+            to_writer.send(encoded).map_err(|_| output(std::io::Error::other("the writer stopped"), "filtered.bin"))
         });
         drop(to_writer);
         (filtering, writer_thread.join())
