@@ -1,6 +1,7 @@
 //! Mixture models for one electrode neighbourhood: Gaussian mixtures
-//! (fitted with linfa-clustering's EM) or k-means, the number of units
-//! chosen by the Bayesian information criterion, and a plain predictor.
+//! (EM from k-means starts, as scikit-learn's `GaussianMixture` fits them)
+//! or k-means (linfa-clustering), the number of units chosen by the
+//! Bayesian information criterion, and a plain predictor.
 //!
 //! BIC = −2·ln L + p·ln n (Schwarz 1978), p = k·d + k·d(d+1)/2 + (k−1) for a
 //! full-covariance mixture. For k-means the likelihood is that of the
@@ -8,7 +9,7 @@
 //! size, sharing one variance σ² = inertia/(n·d), with p = k·d + (k − 1) + 1.
 
 use linfa::prelude::*;
-use linfa_clustering::{GaussianMixtureModel, KMeans};
+use linfa_clustering::KMeans;
 use ndarray::Array2;
 use rand_xoshiro::rand_core::SeedableRng;
 use rand_xoshiro::Xoshiro256Plus;
@@ -108,30 +109,230 @@ pub fn fit_single(rows: &[Vec<f64>], d: usize) -> Option<Mixture> {
     Some(mixture)
 }
 
-/// A k-component full-covariance Gaussian mixture by EM (k-means start,
-/// best of `runs`), or `None` when EM fails for this k.
+/// EM stops when the mean log-likelihood per row changes by less than this
+/// (scikit-learn's and linfa's default `tol`).
+const EM_TOLERANCE: f64 = 1e-3;
+/// EM iterations allowed.
+const EM_MAX_ITERATIONS: usize = 200;
+
+/// A k-component full-covariance Gaussian mixture by EM, as scikit-learn's
+/// `GaussianMixture(covariance_type='full', init_params='kmeans')` fits
+/// one from a single start: the labels of a k-means (k-means++ seeding,
+/// best of `runs`) as responsibilities, then EM until the mean
+/// log-likelihood per row changes by less than [`EM_TOLERANCE`]. `None`
+/// when EM does not converge within [`EM_MAX_ITERATIONS`] or a covariance
+/// is not positive definite.
 pub fn fit_gmm(rows: &[Vec<f64>], d: usize, k: usize, runs: u64, seed: u64) -> Option<Mixture> {
     if k == 1 {
         return fit_single(rows, d);
     }
     let data = DatasetBase::from(to_array(rows, d));
-    let model = GaussianMixtureModel::params_with_rng(k, Xoshiro256Plus::seed_from_u64(seed))
-        .n_runs(runs)
-        .tolerance(1e-3)
-        .reg_covariance(REG_COVARIANCE)
-        .max_n_iterations(200)
-        .fit(&data)
-        .ok()?;
-    let (weights, means, covariances) = (model.weights(), model.means(), model.covariances());
-    let components = (0..k)
-        .map(|c| {
-            let covariance: Vec<f64> = covariances.index_axis(ndarray::Axis(0), c).iter().copied().collect();
-            component(weights[c], means.row(c).to_vec(), &covariance)
-        })
-        .collect::<Option<Vec<_>>>()?;
-    let mut mixture = Mixture { components, bic: 0.0 };
+    let kmeans =
+        KMeans::params_with_rng(k, Xoshiro256Plus::seed_from_u64(seed)).n_runs(runs.max(1) as usize).fit(&data).ok()?;
+    let labels: Vec<usize> = kmeans.predict(&data).to_vec();
+    let mut mixture = Em::new(rows, d, k).run(&labels)?;
     mixture.bic = -2.0 * mixture.log_likelihood(rows) + full_parameters(k, d) * (rows.len() as f64).ln();
     Some(mixture)
+}
+
+/// Rows handled together by [`Em`]: one AVX-512 register of f64.
+const LANES: usize = 8;
+type Block = [f64; LANES];
+
+/// EM on rows laid out by dimension in blocks of [`LANES`] rows (zeros
+/// after the last row, which take no part), so that every step of the E-
+/// and M-steps works on a block of rows at once. Built for AVX2 when the
+/// CPU has it, with the same numbers as the portable build: the loops add
+/// and multiply lane by lane, and every sum runs in one fixed order. (Not
+/// for AVX-512: there the compiler vectorizes across dimensions with
+/// gathers instead, and the stage took 40 % longer.)
+struct Em {
+    d: usize,
+    k: usize,
+    n: usize,
+    /// Block b, dimension j at `values[b * d + j]`.
+    values: Vec<Block>,
+}
+
+impl Em {
+    fn new(rows: &[Vec<f64>], d: usize, k: usize) -> Self {
+        let n = rows.len();
+        let blocks = n.div_ceil(LANES);
+        let mut values = vec![[0.0; LANES]; blocks * d];
+        for (i, row) in rows.iter().enumerate() {
+            for (j, v) in row.iter().enumerate() {
+                values[(i / LANES) * d + j][i % LANES] = *v;
+            }
+        }
+        Em { d, k, n, values }
+    }
+
+    /// EM from the k-means labels: the mixture after the last M-step, once
+    /// the mean log-likelihood per row of the E-step before it changes by
+    /// less than [`EM_TOLERANCE`].
+    fn run(&self, labels: &[usize]) -> Option<Mixture> {
+        let responsibilities = &mut self.responsibilities(labels);
+        #[cfg(target_arch = "x86_64")]
+        if std::is_x86_feature_detected!("avx2") {
+            #[target_feature(enable = "avx2")]
+            unsafe fn avx2(em: &Em, responsibilities: &mut [Block]) -> Option<Mixture> {
+                em.run_portable(responsibilities)
+            }
+            // SAFETY: the CPU supports AVX2, checked just above.
+            return unsafe { avx2(self, responsibilities) };
+        }
+        self.run_portable(responsibilities)
+    }
+
+    /// Responsibilities 1 for each row's label: component c's of block b
+    /// at `[b * k + c]`.
+    fn responsibilities(&self, labels: &[usize]) -> Vec<Block> {
+        let mut responsibilities = vec![[0.0; LANES]; self.values.len() / self.d * self.k];
+        for (i, &label) in labels.iter().enumerate() {
+            responsibilities[(i / LANES) * self.k + label][i % LANES] = 1.0;
+        }
+        responsibilities
+    }
+
+    #[inline(always)]
+    fn run_portable(&self, responsibilities: &mut [Block]) -> Option<Mixture> {
+        let mut mixture = self.maximisation(responsibilities)?;
+        let mut fit = f64::NEG_INFINITY;
+        for _ in 0..EM_MAX_ITERATIONS {
+            let previous = std::mem::replace(&mut fit, self.expectation(&mixture, responsibilities) / self.n as f64);
+            mixture = self.maximisation(responsibilities)?;
+            if (fit - previous).abs() < EM_TOLERANCE {
+                return Some(mixture);
+            }
+        }
+        None
+    }
+
+    /// E-step: every row's responsibilities under `mixture`; returns the
+    /// sum of the rows' log-likelihoods.
+    #[inline(always)]
+    fn expectation(&self, mixture: &Mixture, responsibilities: &mut [Block]) -> f64 {
+        let (d, k) = (self.d, self.k);
+        let whitening: Vec<Whitening> = mixture.components.iter().map(Whitening::of).collect();
+        let (mut z, mut scores) = (vec![[0.0; LANES]; d], vec![[0.0; LANES]; k]);
+        let mut total = 0.0;
+        for (b, (x, r)) in self.values.chunks_exact(d).zip(responsibilities.chunks_exact_mut(k)).enumerate() {
+            for (score, w) in scores.iter_mut().zip(&whitening) {
+                // z = L⁻¹(x − μ), column by column of L⁻¹.
+                z.iter_mut().for_each(|z| *z = [0.0; LANES]);
+                for j in 0..d {
+                    let centred: Block = std::array::from_fn(|l| x[j][l] - w.mean[j]);
+                    for (z, coefficient) in z[j..].iter_mut().zip(&w.columns[j * d + j..(j + 1) * d]) {
+                        *z = mul_add(z, &[*coefficient; LANES], &centred);
+                    }
+                }
+                let squares = z.iter().fold([0.0; LANES], |squares, z| mul_add(&squares, z, z));
+                *score = std::array::from_fn(|l| w.constant - 0.5 * squares[l]);
+            }
+            for l in 0..LANES.min(self.n - b * LANES) {
+                let top = scores.iter().map(|s| s[l]).fold(f64::NEG_INFINITY, f64::max);
+                let norm = top + scores.iter().map(|s| (s[l] - top).exp()).sum::<f64>().ln();
+                for (r, s) in r.iter_mut().zip(&scores) {
+                    r[l] = (s[l] - norm).exp();
+                }
+                total += norm;
+            }
+        }
+        total
+    }
+
+    /// M-step: each component's weight, mean and covariance (plus
+    /// [`REG_COVARIANCE`] on the diagonal) from the responsibilities; a
+    /// component's total responsibility gets 10·ε added, as in
+    /// scikit-learn, so an empty one has a defined mean.
+    #[inline(always)]
+    fn maximisation(&self, responsibilities: &[Block]) -> Option<Mixture> {
+        let (d, k) = (self.d, self.k);
+        let blocks = || self.values.chunks_exact(d).zip(responsibilities.chunks_exact(k));
+        let mut components = Vec::with_capacity(k);
+        // Lane sums of the lower triangle, row by row.
+        let mut sums = vec![[0.0; LANES]; d * (d + 1) / 2];
+        for c in 0..k {
+            let (mut weights, mut means) = ([0.0; LANES], vec![[0.0; LANES]; d]);
+            for (x, r) in blocks() {
+                let r = r[c];
+                weights = std::array::from_fn(|l| weights[l] + r[l]);
+                for (mean, x) in means.iter_mut().zip(x) {
+                    *mean = mul_add(mean, &r, x);
+                }
+            }
+            let total = weights.iter().sum::<f64>() + 10.0 * f64::EPSILON;
+            let mean: Vec<f64> = means.iter().map(|m| m.iter().sum::<f64>() / total).collect();
+            sums.iter_mut().for_each(|s| *s = [0.0; LANES]);
+            let mut centred = vec![[0.0; LANES]; d];
+            for (x, r) in blocks() {
+                for ((centred, x), m) in centred.iter_mut().zip(x).zip(&mean) {
+                    *centred = std::array::from_fn(|l| x[l] - m);
+                }
+                // Row a of the triangle, then the rows after it.
+                let mut rest = sums.as_mut_slice();
+                for a in 0..d {
+                    let (row, after) = std::mem::take(&mut rest).split_at_mut(a + 1);
+                    rest = after;
+                    let weighted: Block = std::array::from_fn(|l| r[c][l] * centred[a][l]);
+                    for (sum, centred) in row.iter_mut().zip(&centred[..=a]) {
+                        *sum = mul_add(sum, &weighted, centred);
+                    }
+                }
+            }
+            let mut covariance = vec![0.0; d * d];
+            let mut entry = 0;
+            for a in 0..d {
+                for b in 0..=a {
+                    let value = sums[entry].iter().sum::<f64>() / total;
+                    (covariance[a * d + b], covariance[b * d + a]) = (value, value);
+                    entry += 1;
+                }
+                covariance[a * d + a] += REG_COVARIANCE;
+            }
+            components.push(component(total / self.n as f64, mean, &covariance)?);
+        }
+        Some(Mixture { components, bic: 0.0 })
+    }
+}
+
+/// `sum + a·b`, lane by lane: a whole block read, then a whole block
+/// written, which the compiler turns into one vector operation each.
+#[inline(always)]
+fn mul_add(sum: &Block, a: &Block, b: &Block) -> Block {
+    std::array::from_fn(|l| sum[l] + a[l] * b[l])
+}
+
+/// A component ready for the E-step: z = L⁻¹(x − μ) as a sum of columns
+/// of L⁻¹ (kept transposed, row j holding column j from the diagonal
+/// down), so the inner loop is a vector update without divisions.
+struct Whitening<'a> {
+    mean: &'a [f64],
+    columns: Vec<f64>,
+    /// ln weight − (d·ln 2π + ln det Σ) / 2.
+    constant: f64,
+}
+
+impl<'a> Whitening<'a> {
+    #[inline(always)]
+    fn of(component: &'a Component) -> Self {
+        let d = component.mean.len();
+        let l = &component.cholesky;
+        // Column j of L⁻¹ by forward substitution on the unit vector e_j.
+        let mut columns = vec![0.0; d * d];
+        for j in 0..d {
+            let column = &mut columns[j * d..(j + 1) * d];
+            for i in j..d {
+                let mut sum = if i == j { 1.0 } else { 0.0 };
+                for m in j..i {
+                    sum -= l[i * d + m] * column[m];
+                }
+                column[i] = sum / l[i * d + i];
+            }
+        }
+        let constant = component.weight.ln() - 0.5 * (d as f64 * (2.0 * std::f64::consts::PI).ln() + component.log_det);
+        Whitening { mean: &component.mean, columns, constant }
+    }
 }
 
 /// k-means (best of `runs`) as a mixture of spherical Gaussians with one
@@ -285,6 +486,21 @@ mod tests {
                 assert!(labels[blob * 200..(blob + 1) * 200].iter().all(|&l| l == first));
             }
         }
+    }
+
+    // EM gives the same mixture on the path built for this CPU and on the
+    // portable one, for a last block of rows that is only partly filled.
+    #[test]
+    fn em_paths_agree() {
+        let mut rng = spikeyard_contract::testing::TestRng::new(6);
+        let rows: Vec<Vec<f64>> =
+            (0..203).map(|i| (0..5).map(|j| 4.0 * ((i % 3) * j) as f64 + rng.normal()).collect()).collect();
+        let labels: Vec<usize> = (0..rows.len()).map(|i| (i + i / 50) % 3).collect();
+        let em = Em::new(&rows, 5, 3);
+        let fast = em.run(&labels).unwrap();
+        let plain = em.run_portable(&mut em.responsibilities(&labels)).unwrap();
+        assert_eq!(fast, plain);
+        assert_eq!(fast.components.len(), 3);
     }
 
     // The sweep keeps the lowest BIC; patience stops it after that many k

@@ -17,7 +17,9 @@ pub struct ClusterParams {
     pub min_events_per_unit: usize,
     /// Events (a seeded random subset) per neighbourhood used to fit. Default 4000.
     pub fit_events_per_channel: usize,
-    /// Restarts of each fit; the best is kept. Default 3.
+    /// k-means starts (k-means++ seeding) of each fit; the one with the
+    /// lowest inertia is kept, and for `gmm` EM runs from its labels.
+    /// Default 3.
     pub runs: u64,
     /// Larger unit counts are tried until this many in a row fail to lower
     /// the BIC; 0 tries every count up to max_units_per_channel. Default 2.

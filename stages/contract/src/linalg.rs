@@ -29,7 +29,15 @@ pub fn cholesky(matrix: &[f64], d: usize) -> Option<(Vec<f64>, f64)> {
 /// Cholesky factor of the covariance.
 pub fn mahalanobis_squared(cholesky: &[f64], mean: &[f64], x: &[f64]) -> f64 {
     let d = mean.len();
-    let mut z = vec![0.0; d];
+    // On the stack for the usual feature widths: this runs for every row
+    // and component of a mixture fit.
+    let (mut stack, mut heap) = ([0.0f64; 32], Vec::new());
+    let z: &mut [f64] = if d <= stack.len() {
+        &mut stack[..d]
+    } else {
+        heap.resize(d, 0.0);
+        &mut heap
+    };
     for i in 0..d {
         let mut sum = x[i] - mean[i];
         for j in 0..i {
