@@ -135,7 +135,7 @@ pub fn fit_gmm(rows: &[Vec<f64>], d: usize, k: usize, runs: u64, seed: u64) -> O
     Some(mixture)
 }
 
-/// Rows handled together by [`Em`]: one AVX-512 register of f64.
+/// Rows handled together by [`Em`] (two AVX2 registers of f64).
 const LANES: usize = 8;
 type Block = [f64; LANES];
 
@@ -145,7 +145,7 @@ type Block = [f64; LANES];
 /// CPU has it, with the same numbers as the portable build: the loops add
 /// and multiply lane by lane, and every sum runs in one fixed order. (Not
 /// for AVX-512: there the compiler vectorizes across dimensions with
-/// gathers instead, and the stage took 40 % longer.)
+/// gathers instead, and the stage used about 40 % more CPU time.)
 struct Em {
     d: usize,
     k: usize,
