@@ -111,9 +111,9 @@ pub fn fit_single(rows: &[Vec<f64>], d: usize) -> Option<Mixture> {
 
 /// EM stops when the mean log-likelihood per row changes by less than this
 /// (scikit-learn's and linfa's default `tol`).
-const EM_TOLERANCE: f64 = 1e-3;
+pub const EM_TOLERANCE: f64 = 1e-3;
 /// EM iterations allowed.
-const EM_MAX_ITERATIONS: usize = 200;
+pub const EM_MAX_ITERATIONS: usize = 200;
 
 /// A k-component full-covariance Gaussian mixture by EM, as scikit-learn's
 /// `GaussianMixture(covariance_type='full', init_params='kmeans')` fits
