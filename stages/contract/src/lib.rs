@@ -42,30 +42,33 @@ pub use request::{ProgressReporter, StageReport, StageRequest};
 pub use stage_main::{stage_main, StageFailure};
 
 /// The body of a method that calls `$this.$method(args)`, an
-/// `#[inline(always)]` method of `$ty`, in a copy built for AVX-512 or AVX2
-/// when the CPU has them (chosen at run time; the build itself targets any
-/// x86-64), else as built. The operations and their order are the same in
-/// every copy (no fused multiply-add), so the results are identical; the
-/// tests compare the copies.
+/// `#[inline(always)]` method of `$ty`, in a copy built for AVX-512 or
+/// AVX2 (each with FMA) when the CPU has them (chosen at run time; the
+/// build itself targets any x86-64), else as built. The operations and
+/// their order are the same in every copy, and a multiply-add is fused
+/// only where the code says so (`mul_add`: one rounding in every copy, an
+/// instruction in the wide ones, the library's exact routine otherwise),
+/// so the results are identical; the tests compare the copies.
 #[macro_export]
 macro_rules! wide_build {
     ($ty:ty, $this:ident.$method:ident($($arg:ident: $arg_ty:ty),*) -> $ret:ty) => {{
         #[cfg(target_arch = "x86_64")]
         {
-            #[target_feature(enable = "avx512f")]
+            #[target_feature(enable = "avx512f,fma")]
             unsafe fn avx512(this: &$ty, $($arg: $arg_ty),*) -> $ret {
                 this.$method($($arg),*)
             }
-            #[target_feature(enable = "avx2")]
+            #[target_feature(enable = "avx2,fma")]
             unsafe fn avx2(this: &$ty, $($arg: $arg_ty),*) -> $ret {
                 this.$method($($arg),*)
             }
-            if std::is_x86_feature_detected!("avx512f") {
-                // SAFETY: the CPU supports AVX-512F, checked just above.
+            let fma = std::is_x86_feature_detected!("fma");
+            if fma && std::is_x86_feature_detected!("avx512f") {
+                // SAFETY: the CPU supports AVX-512F and FMA, checked just above.
                 return unsafe { avx512($this, $($arg),*) };
             }
-            if std::is_x86_feature_detected!("avx2") {
-                // SAFETY: the CPU supports AVX2, checked just above.
+            if fma && std::is_x86_feature_detected!("avx2") {
+                // SAFETY: the CPU supports AVX2 and FMA, checked just above.
                 return unsafe { avx2($this, $($arg),*) };
             }
         }
