@@ -1,7 +1,8 @@
 //! The measures stage: how much to trust each unit and what it did.
 //!
 //! Data flow of [`run`]:
-//! 1. read the cluster stage's `spikes.parquet`, `units.parquet` and
+//! 1. read the cluster stage's `spikes.parquet` (streamed, keeping 16
+//!    bytes a spike), `units.parquet` and
 //!    `templates.parquet`, the detect stage's `channel_noise.parquet`, and
 //!    the sample rate and length of the recording;
 //! 2. per unit ([`metrics`]): SNR (template trough on the main electrode ÷
@@ -47,37 +48,69 @@ struct Spike {
     event: u64,
 }
 
-fn read_spikes(path: &Path) -> Result<Vec<Spike>, ContractError> {
-    let mut spikes = Vec::new();
-    for batch in read_table(path)? {
-        let units: &Int32Array = column(path, &batch, "unit_id")?;
-        let samples: &Int64Array = column(path, &batch, "sample")?;
-        let channels: &Int32Array = column(path, &batch, "channel")?;
-        let amplitudes: &Float32Array = column(path, &batch, "amplitude_uv")?;
-        let events: &Int64Array = column(path, &batch, "event")?;
+/// Visit `spikes.parquet` (at `path`) a batch at a time, refusing a spike
+/// whose unit is not a row of `units.parquet` (`n_units` rows, at
+/// `units_path`). Hours of recording hold millions of spikes: the table is
+/// never held whole, only what each measure keeps of a spike.
+fn for_each_spike(
+    path: &Path,
+    n_units: usize,
+    units_path: &Path,
+    mut visit: impl FnMut(Spike),
+) -> Result<(), StageFailure> {
+    for_each_batch(path, |batch| {
+        let units: &Int32Array = column(path, batch, "unit_id")?;
+        let samples: &Int64Array = column(path, batch, "sample")?;
+        let channels: &Int32Array = column(path, batch, "channel")?;
+        let amplitudes: &Float32Array = column(path, batch, "amplitude_uv")?;
+        let events: &Int64Array = column(path, batch, "event")?;
         for i in 0..batch.num_rows() {
-            spikes.push(Spike {
-                unit: units.value(i).max(0) as usize,
+            let unit = units.value(i).max(0) as usize;
+            if unit >= n_units {
+                return Err(StageFailure::bad_input(unit_rows_refused(units_path)));
+            }
+            visit(Spike {
+                unit,
                 sample: samples.value(i).max(0) as u64,
                 channel: channels.value(i).max(0) as usize,
                 amplitude_uv: amplitudes.value(i),
                 event: events.value(i).max(0) as u64,
             });
         }
+        Ok(())
+    })
+}
+
+fn unit_rows_refused(units_path: &Path) -> ContractError {
+    ContractError::Format {
+        path: units_path.to_path_buf(),
+        message: "unit_id must number the rows 0, 1, 2, ... and cover every unit in spikes.parquet".into(),
     }
-    Ok(spikes)
+}
+
+/// What the measures keep of one unit's spikes, in the table's order: 16
+/// bytes a spike.
+#[derive(Debug, Default)]
+struct Train {
+    samples: Vec<u64>,
+    /// |amplitude| ÷ the detection threshold of the spike's channel, for
+    /// the spikes whose channel has a positive threshold.
+    amplitude_ratios: Vec<f64>,
+    /// Spikes per channel they were detected on.
+    channels: HashMap<usize, usize>,
 }
 
 fn f64_column(path: &Path, batch: &RecordBatch, name: &str) -> Result<Vec<f64>, ContractError> {
     Ok(column::<Float64Array>(path, batch, name)?.values().to_vec())
 }
 
-/// The sampled events of one electrode: each one's unit (when it is a
-/// sorted spike) and its `width` features, kept as stored (f32, in one
-/// buffer: 84 bytes an event for 21 features, where a vector of f64 per
-/// event took about 230).
+/// The sampled events of one electrode: each one's event number, its unit
+/// (when it is a sorted spike; filled in once all are drawn) and its
+/// `width` features, kept as stored (f32, in one buffer: 84 bytes an event
+/// for 21 features, where a vector of f64 per event took about 230).
 #[derive(Debug, Default)]
 struct FeatureRows {
+    events: Vec<u64>,
     units: Vec<Option<usize>>,
     values: Vec<f32>,
     width: usize,
@@ -85,7 +118,7 @@ struct FeatureRows {
 
 impl FeatureRows {
     fn len(&self) -> usize {
-        self.units.len()
+        self.events.len()
     }
 
     fn row(&self, i: usize) -> &[f32] {
@@ -134,18 +167,14 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     let fs = recording.sample_rate_hz;
     let duration_s = recording.duration_s();
 
-    let spikes = read_spikes(&spikes_path)?;
     let units_batches = read_table(&units_path)?;
     let units = arrow_select_concat(&units_path, &units_batches)?;
     let n_units = units.num_rows();
     let main_channel: Vec<usize> =
         column::<Int32Array>(&units_path, &units, "channel")?.values().iter().map(|&c| c.max(0) as usize).collect();
     let unit_ids: Vec<i32> = column::<Int32Array>(&units_path, &units, "unit_id")?.values().to_vec();
-    if unit_ids.iter().enumerate().any(|(i, &u)| u != i as i32) || spikes.iter().any(|s| s.unit >= n_units) {
-        return Err(StageFailure::bad_input(ContractError::Format {
-            path: units_path.clone(),
-            message: "unit_id must number the rows 0, 1, 2, ... and cover every unit in spikes.parquet".into(),
-        }));
+    if unit_ids.iter().enumerate().any(|(i, &u)| u != i as i32) {
+        return Err(StageFailure::bad_input(unit_rows_refused(&units_path)));
     }
     let mut noise = Vec::new();
     let mut threshold = Vec::new();
@@ -171,11 +200,16 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
         Ok::<(), StageFailure>(())
     })?;
 
-    // Per-unit spike trains.
-    let mut trains: Vec<Vec<&Spike>> = vec![Vec::new(); n_units];
-    for spike in &spikes {
-        trains[spike.unit].push(spike);
-    }
+    // Per-unit spike trains, in one streamed pass.
+    let mut trains: Vec<Train> = (0..n_units).map(|_| Train::default()).collect();
+    for_each_spike(&spikes_path, n_units, &units_path, |spike| {
+        let train = &mut trains[spike.unit];
+        train.samples.push(spike.sample);
+        if let Some(t) = threshold.get(spike.channel).filter(|t| **t > 0.0) {
+            train.amplitude_ratios.push((spike.amplitude_uv as f64).abs() / t);
+        }
+        *train.channels.entry(spike.channel).or_default() += 1;
+    })?;
     let refractory_frames = (params.refractory_ms * 1e-3 * fs).round() as u64;
     let n_presence_bins = ((duration_s / params.presence_bin_s).floor() as usize).max(1);
     let noise_at = |c: usize| noise.get(c).copied().unwrap_or(f64::NAN);
@@ -185,14 +219,10 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     let feature_channel: Vec<usize> = trains
         .iter()
         .map(|train| {
-            let mut counts: HashMap<usize, usize> = HashMap::new();
-            for s in train {
-                *counts.entry(s.channel).or_default() += 1;
-            }
-            counts.into_iter().max_by_key(|&(c, n)| (n, std::cmp::Reverse(c))).map_or(0, |(c, _)| c)
+            let most = train.channels.iter().max_by_key(|&(&c, &n)| (n, std::cmp::Reverse(c)));
+            most.map_or(0, |(&c, _)| c)
         })
         .collect();
-    let unit_of_event: HashMap<u64, usize> = spikes.iter().map(|s| (s.event, s.unit)).collect();
     let wanted: std::collections::BTreeSet<usize> = feature_channel.iter().copied().collect();
     let mut group_counts: HashMap<usize, u64> = HashMap::new();
     let mut rows: HashMap<usize, FeatureRows> = HashMap::new();
@@ -223,12 +253,23 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
             {
                 let group = rows.entry(channel).or_default();
                 group.width = width;
-                group.units.push(unit_of_event.get(&event).copied());
+                group.events.push(event);
                 group.values.extend_from_slice(&values.values()[i * width..(i + 1) * width]);
             }
         }
         Ok::<(), StageFailure>(())
     })?;
+    // The drawn events' units, from a second pass over the spikes.
+    let mut unit_of_event: HashMap<u64, Option<usize>> =
+        rows.values().flat_map(|group| group.events.iter().map(|&event| (event, None))).collect();
+    for_each_spike(&spikes_path, n_units, &units_path, |spike| {
+        if let Some(unit) = unit_of_event.get_mut(&spike.event) {
+            *unit = Some(spike.unit);
+        }
+    })?;
+    for group in rows.values_mut() {
+        group.units = group.events.iter().map(|event| unit_of_event[event]).collect();
+    }
     let isolation: Vec<(Option<f64>, Option<f64>)> = (0..n_units)
         .map(|unit| {
             let Some(group) = rows.get(&feature_channel[unit]) else { return (None, None) };
@@ -245,10 +286,9 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
 
     let per_unit: Vec<[f64; 9]> = (0..n_units)
         .map(|unit| {
-            let train = &trains[unit];
-            let samples: Vec<u64> = train.iter().map(|s| s.sample).collect();
+            let Train { samples, amplitude_ratios, .. } = &trains[unit];
             let n = samples.len() as u64;
-            let (violations, intervals) = metrics::isi_violations(&samples, refractory_frames);
+            let (violations, intervals) = metrics::isi_violations(samples, refractory_frames);
             let contamination = metrics::hill_contamination(
                 n,
                 duration_s,
@@ -256,12 +296,6 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
                 params.refractory_ms * 1e-3,
                 params.censored_ms * 1e-3,
             );
-            let ratios: Vec<f64> = train
-                .iter()
-                .filter_map(|s| {
-                    threshold.get(s.channel).filter(|t| **t > 0.0).map(|t| (s.amplitude_uv as f64).abs() / t)
-                })
-                .collect();
             let (low, high) = stats::poisson_interval_95(n);
             let sigma = noise_at(main_channel[unit]);
             [
@@ -270,8 +304,8 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
                 violations as f64,
                 if intervals > 0 { violations as f64 / intervals as f64 } else { f64::NAN },
                 contamination,
-                metrics::presence_ratio(&samples, recording.n_frames, n_presence_bins),
-                metrics::fraction_below_threshold(&ratios),
+                metrics::presence_ratio(samples, recording.n_frames, n_presence_bins),
+                metrics::fraction_below_threshold(amplitude_ratios),
                 low / duration_s,
                 high / duration_s,
             ]
@@ -313,8 +347,8 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     let mut rate_rows: Vec<RateRow> = Vec::with_capacity(n_units * n_bins);
     for (unit, train) in trains.iter().enumerate() {
         let mut counts = vec![0u64; n_bins];
-        for s in train {
-            counts[(s.sample / bin_frames) as usize] += 1;
+        for sample in &train.samples {
+            counts[(sample / bin_frames) as usize] += 1;
         }
         let widths: Vec<f64> =
             (0..n_bins).map(|b| ((recording.n_frames - b as u64 * bin_frames).min(bin_frames)) as f64 / fs).collect();
@@ -384,6 +418,45 @@ fn arrow_select_concat(path: &Path, batches: &[RecordBatch]) -> Result<RecordBat
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    fn spikes_table(path: &Path, units: &[i32]) {
+        let n = units.len();
+        let batch = RecordBatch::try_new(
+            Arc::new(Schema::new(vec![
+                Field::new("unit_id", DataType::Int32, false),
+                Field::new("sample", DataType::Int64, false),
+                Field::new("channel", DataType::Int32, false),
+                Field::new("amplitude_uv", DataType::Float32, false),
+                Field::new("event", DataType::Int64, false),
+            ])),
+            vec![
+                Arc::new(Int32Array::from(units.to_vec())) as ArrayRef,
+                Arc::new(Int64Array::from_iter_values((0..n as i64).map(|i| 100 * i))),
+                Arc::new(Int32Array::from(vec![3; n])),
+                Arc::new(Float32Array::from(vec![-80.0; n])),
+                Arc::new(Int64Array::from_iter_values(0..n as i64)),
+            ],
+        )
+        .unwrap();
+        write_table(path, &batch, &[]).unwrap();
+    }
+
+    // The streamed spikes: every row in order, and a unit that
+    // units.parquet does not have is refused, naming that table.
+    #[test]
+    fn spikes_are_streamed_and_a_unit_without_a_row_is_refused() {
+        let dir = tempfile::tempdir().unwrap();
+        let (spikes, units) = (dir.path().join("spikes.parquet"), dir.path().join("units.parquet"));
+        spikes_table(&spikes, &[0, 1, 0]);
+        let mut seen = Vec::new();
+        for_each_spike(&spikes, 2, &units, |s| seen.push((s.unit, s.sample, s.event))).unwrap();
+        assert_eq!(seen, [(0, 0, 0), (1, 100, 1), (0, 200, 2)]);
+        spikes_table(&spikes, &[0, 5]);
+        let failure = for_each_spike(&spikes, 2, &units, |_| {}).unwrap_err();
+        let message = failure.error.to_string();
+        assert!(failure.bad_input && message.contains("units.parquet"), "{message}");
+        assert!(message.contains("cover every unit in spikes.parquet"), "{message}");
+    }
 
     #[test]
     fn smoothing_keeps_a_constant_and_spreads_a_spike() {
