@@ -42,7 +42,7 @@ use spikeyard_contract::events::{for_each_event_window, EventRecord, EventWindow
 use spikeyard_contract::recording::StoredSum;
 use spikeyard_contract::runs::group_runs;
 use spikeyard_contract::sampling::uniform;
-use spikeyard_contract::table::{column, read_table, write_table};
+use spikeyard_contract::table::{column, for_each_batch, read_table, write_table};
 use spikeyard_contract::{ContractError, Recording, StageFailure, StageReport, StageRequest};
 use std::path::Path;
 use std::sync::Arc;
@@ -493,27 +493,36 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     let params: PropagationParams = request.params().map_err(StageFailure::bad_input)?;
     params.check().map_err(|message| request.params_refused(message))?;
 
-    let mut all: Vec<(usize, u64)> = Vec::new();
-    for batch in read_table(&spikes_path)? {
-        let units: &Int32Array = column(&spikes_path, &batch, "unit_id")?;
-        let samples: &Int64Array = column(&spikes_path, &batch, "sample")?;
-        all.extend(units.values().iter().zip(samples.values()).map(|(&u, &s)| (u.max(0) as usize, s.max(0) as u64)));
-    }
-    let n_units = all.iter().map(|s| s.0 + 1).max().unwrap_or(0);
-    let mut per_unit = vec![0usize; n_units];
-    for s in &all {
-        per_unit[s.0] += 1;
-    }
-    // A seeded subset of at most max_spikes_per_unit per unit.
-    let chosen: Vec<(usize, u64)> = all
-        .iter()
-        .enumerate()
-        .filter(|(i, s)| {
-            let p = params.max_spikes_per_unit as f64 / per_unit[s.0] as f64;
-            spikeyard_contract::sampling::keep(request.seed, 0xA705, *i as u64, p)
+    // Two streamed passes over the spikes (millions in hours of recording):
+    // each unit's count, then a seeded subset of at most about
+    // max_spikes_per_unit per unit, drawn by row.
+    let for_each_spike = |visit: &mut dyn FnMut(usize, u64)| {
+        for_each_batch(&spikes_path, |batch| {
+            let units: &Int32Array = column(&spikes_path, batch, "unit_id")?;
+            let samples: &Int64Array = column(&spikes_path, batch, "sample")?;
+            for (&u, &s) in units.values().iter().zip(samples.values()) {
+                visit(u.max(0) as usize, s.max(0) as u64);
+            }
+            Ok::<(), StageFailure>(())
         })
-        .map(|(_, s)| *s)
-        .collect();
+    };
+    let mut per_unit: Vec<usize> = Vec::new();
+    for_each_spike(&mut |unit, _| {
+        if unit >= per_unit.len() {
+            per_unit.resize(unit + 1, 0);
+        }
+        per_unit[unit] += 1;
+    })?;
+    let n_units = per_unit.len();
+    let mut chosen: Vec<(usize, u64)> = Vec::new();
+    let mut row = 0u64;
+    for_each_spike(&mut |unit, sample| {
+        let p = params.max_spikes_per_unit as f64 / per_unit[unit] as f64;
+        if spikeyard_contract::sampling::keep(request.seed, 0xA705, row, p) {
+            chosen.push((unit, sample));
+        }
+        row += 1;
+    })?;
     let mut noise = Vec::new();
     for batch in read_table(&noise_path)? {
         noise.extend(column::<Float64Array>(&noise_path, &batch, "noise_uv")?.values().iter().copied());
