@@ -22,6 +22,12 @@ pub struct TableWriter {
     writer: ArrowWriter<File>,
 }
 
+/// Rows per row group. The writer holds a row group's encoded columns
+/// until it is complete: the library's default of about a million rows
+/// would let a long recording's events or features grow the memory of the
+/// stage writing them by a hundred MiB or more before the first flush.
+const ROW_GROUP_ROWS: usize = 1 << 16;
+
 impl TableWriter {
     /// Start writing `path` with `schema` and key-value `metadata`
     /// (for provenance: writer, versions, hashes).
@@ -34,6 +40,7 @@ impl TableWriter {
         let key_values = metadata.iter().map(|(k, v)| KeyValue::new(k.to_string(), v.clone())).collect();
         let properties = WriterProperties::builder()
             .set_compression(Compression::SNAPPY)
+            .set_max_row_group_size(ROW_GROUP_ROWS)
             .set_key_value_metadata(Some(key_values))
             .build();
         let writer = ArrowWriter::try_new(file, schema, Some(properties))
