@@ -19,6 +19,7 @@
 //! Memory: the fitting subsets, one (sample, unit) pair per event, and the
 //! templates. The features are streamed.
 
+pub mod dip;
 pub mod merge;
 pub mod model;
 pub mod params;
