@@ -11,15 +11,25 @@
 //!    (streamed);
 //! 4. templates: mean filtered waveforms of a seeded subset of each unit's
 //!    spikes on the electrodes around it, in one pass over the recording;
-//! 5. units that are one neuron (close positions, correlated templates)
-//!    are merged ([`merge`]), spikes counted twice within a unit are
-//!    dropped, units are numbered by electrode and amplitude;
-//! 6. `spikes.parquet`, `units.parquet` and `templates.parquet`.
+//! 5. clusters that are one neuron are merged ([`merge`]): templates alike
+//!    in shape and amplitude, whose spikes projected between them form one
+//!    mode ([`dip`]); a second pass over the recording projects them;
+//! 6. smaller units firing only inside a larger one's bursts join it
+//!    ([`burst`]);
+//! 7. units whose spikes are another's seen again at a fixed lag (axon,
+//!    far electrodes) are folded into it ([`echo`]);
+//! 8. fragments (too few spikes) join a unit that explains them or leave
+//!    the sort; spikes counted twice within a unit are dropped; units are
+//!    numbered by electrode and amplitude;
+//! 9. `spikes.parquet`, `units.parquet`, `templates.parquet` and
+//!    `unit_echoes.parquet`.
 //!
 //! Memory: the fitting subsets, one (sample, unit) pair per event, and the
 //! templates. The features are streamed.
 
+pub mod burst;
 pub mod dip;
+pub mod echo;
 pub mod merge;
 pub mod model;
 pub mod params;
@@ -28,7 +38,8 @@ use arrow_array::{
     Array, ArrayRef, BooleanArray, FixedSizeListArray, Float32Array, Float64Array, Int32Array, Int64Array, RecordBatch,
 };
 use arrow_schema::{DataType, Field, Schema};
-use merge::{Template, TemplateSummary};
+use echo::Echo;
+use merge::{Candidate, Template, TemplateSummary};
 use model::Mixture;
 use params::{ClusterParams, ValidClusterParams};
 use rayon::prelude::*;
@@ -45,6 +56,7 @@ pub const VERSION: &str = env!("CARGO_PKG_VERSION");
 pub const SPIKES_TABLE: &str = "spikes.parquet";
 pub const UNITS_TABLE: &str = "units.parquet";
 pub const TEMPLATES_TABLE: &str = "templates.parquet";
+pub const ECHOES_TABLE: &str = "unit_echoes.parquet";
 
 /// One batch of the features table, columns borrowed.
 pub struct FeatureBatch<'a> {
@@ -261,6 +273,250 @@ fn measure_templates(
         .collect())
 }
 
+/// A candidate pair's projected spikes: unit a's, then unit b's.
+type Projected = (Vec<f64>, Vec<f64>);
+
+/// Projections of a seeded subset of each candidate pair's spikes
+/// (`merge_test_spikes` a unit) on the pair's axis, in one pass over the
+/// recording: per candidate, a's values and b's (b read at its aligned
+/// time). A spike's projection is its waveform on the axis electrodes,
+/// dotted with the axis (µV²; the scale does not matter to the dip).
+fn project_on_axes(
+    recording: &Recording,
+    spikes: &[Assigned],
+    candidates: &[Candidate],
+    n_units: usize,
+    params: &ValidClusterParams,
+    seed: u64,
+    origin: &Path,
+) -> Result<Vec<Projected>, StageFailure> {
+    let mut projections = vec![(Vec::new(), Vec::new()); candidates.len()];
+    if candidates.is_empty() {
+        return Ok(projections);
+    }
+    let mut counts = vec![0usize; n_units];
+    for s in spikes {
+        counts[s.unit as usize] += 1;
+    }
+    let mut tested = vec![false; n_units];
+    for c in candidates {
+        tested[c.a] = true;
+        tested[c.b] = true;
+    }
+    let runs: Vec<Vec<ChannelRun>> = candidates.iter().map(|c| channel_runs(c.channels.iter().copied())).collect();
+    let chosen = spikes.iter().enumerate().filter(|(i, s)| {
+        let unit = s.unit as usize;
+        tested[unit] && keep(seed, 0xD1F, *i as u64, params.merge_test_spikes as f64 / counts[unit] as f64)
+    });
+    let events = chosen.map(|(i, s)| {
+        Ok(EventRecord { index: i as u64, sample: s.sample, channel: s.channel as usize, amplitude_uv: s.amplitude_uv })
+    });
+    let before = params.template_before_frames as i64;
+    let margin = params.template_before_frames.max(params.template_after_frames) + params.merge_max_shift_frames + 1;
+    let n_channels = recording.n_channels;
+    let mut by_unit: Vec<Vec<usize>> = vec![Vec::new(); n_units];
+    for_each_event_window(recording, events, origin, params.chunk_frames, margin, |window| {
+        by_unit.iter_mut().for_each(Vec::clear);
+        for (i, event) in window.events.iter().enumerate() {
+            by_unit[spikes[event.index as usize].unit as usize].push(i);
+        }
+        projections.par_iter_mut().zip(candidates).zip(&runs).for_each_init(
+            Vec::new,
+            |block, (((on_a, on_b), candidate), runs)| {
+                block.resize(candidate.axis.len(), 0.0f32);
+                for (unit, shift, out) in [(candidate.a, 0, on_a), (candidate.b, candidate.alignment.shift, on_b)] {
+                    for &i in &by_unit[unit] {
+                        let first = window.events[i].sample as i64 + shift - before;
+                        window.copy_runs(first, runs, n_channels, block);
+                        out.push(block.iter().zip(&candidate.axis).map(|(&v, &w)| v as f64 * w).sum());
+                    }
+                }
+            },
+        );
+        Ok::<(), StageFailure>(())
+    })?;
+    Ok(projections)
+}
+
+/// Whether a pair's projected spikes form one mode: Hartigan's dip test
+/// (see [`dip`]) p at least `alpha`. Fewer than 8 spikes cannot tell, and
+/// the templates' likeness decides.
+fn one_mode(projected: &Projected, alpha: f64) -> bool {
+    let mut values: Vec<f64> = projected.0.iter().chain(&projected.1).copied().collect();
+    if values.len() < 8 {
+        return true;
+    }
+    values.sort_by(f64::total_cmp);
+    dip::dip_test(&values).1 >= alpha
+}
+
+/// The templates of merged groups: each group's members aligned on the
+/// member averaged from the most spikes, and combined; and each member's
+/// shift (its spikes' samples plus the shift are the group's timing).
+fn combine_groups(
+    templates: &[Template],
+    merged: &[usize],
+    n_groups: usize,
+    max_shift_frames: usize,
+) -> (Vec<Template>, Vec<i64>) {
+    let mut shifts = vec![0i64; templates.len()];
+    let combined = (0..n_groups)
+        .map(|group| {
+            let members: Vec<usize> = (0..templates.len()).filter(|&m| merged[m] == group).collect();
+            let reference =
+                *members.iter().max_by_key(|&&m| templates[m].n_averaged).expect("every group has a member");
+            for &m in &members {
+                shifts[m] = merge::align(&templates[reference], &templates[m], max_shift_frames).map_or(0, |a| a.shift);
+            }
+            merge::combine(&members.iter().map(|&m| (&templates[m], shifts[m])).collect::<Vec<_>>())
+        })
+        .collect();
+    (combined, shifts)
+}
+
+/// Pairs (larger, smaller) of units where the smaller is the larger's
+/// burst tail: templates within the merge distance, aligned correlation at
+/// least the merge rule's, amplitude ratio at least
+/// `burst_min_amplitude_ratio`, and the timing of [`burst::is_burst_tail`].
+fn burst_tail_pairs(
+    templates: &[Template],
+    summaries: &[TemplateSummary],
+    trains: &[Vec<u64>],
+    params: &ValidClusterParams,
+) -> Vec<(usize, usize)> {
+    let n = templates.len();
+    let pairs: Vec<(usize, usize)> = (0..n)
+        .flat_map(|a| (a + 1..n).map(move |b| (a, b)))
+        .filter(|&(a, b)| {
+            let (sa, sb) = (&summaries[a], &summaries[b]);
+            (sa.x_um - sb.x_um).hypot(sa.y_um - sb.y_um) <= params.merge_distance_um
+        })
+        .collect();
+    pairs
+        .into_par_iter()
+        .filter_map(|(a, b)| {
+            let (head, tail) = if summaries[a].trough_uv <= summaries[b].trough_uv { (a, b) } else { (b, a) };
+            if !burst::is_burst_tail(&trains[head], &trains[tail], &params.burst) {
+                return None;
+            }
+            let alignment = merge::align(&templates[head], &templates[tail], params.merge_max_shift_frames)?;
+            (alignment.correlation >= params.merge_min_correlation
+                && alignment.amplitude_ratio >= params.burst_min_amplitude_ratio)
+                .then_some((head, tail))
+        })
+        .collect()
+}
+
+/// Fold each echo unit's spikes into its source: a spike with a source
+/// spike at the echo's lag (± `jitter_frames`) is that spike seen again and
+/// is dropped; the others move to the source at the source's time (the
+/// spike's time minus the lag, within the recording's `n_frames`). Returns the spikes dropped; `spikes` stay in
+/// sample order.
+fn fold_echoes(spikes: &mut Vec<Assigned>, folded: &[Option<Echo>], jitter_frames: u64, n_frames: u64) -> usize {
+    let mut trains: Vec<Vec<u64>> = vec![Vec::new(); folded.len()];
+    for s in spikes.iter() {
+        trains[s.unit as usize].push(s.sample);
+    }
+    let before = spikes.len();
+    spikes.retain_mut(|s| {
+        let Some(echo) = folded[s.unit as usize] else { return true };
+        let at = ((s.sample as f64 - echo.lag_frames).round().max(0.0) as u64).min(n_frames.saturating_sub(1));
+        let train = &trains[echo.source];
+        let first = train.partition_point(|&t| t + jitter_frames < at);
+        if train.get(first).is_some_and(|&t| t <= at + jitter_frames) {
+            return false;
+        }
+        s.unit = echo.source as u32;
+        s.sample = at;
+        true
+    });
+    spikes.sort_by_key(|s| (s.sample, s.event));
+    before - spikes.len()
+}
+
+/// Where each unit ends after echoes and fragments: itself, the unit it
+/// joins, or nowhere. Echoes end with their source. A unit left with fewer
+/// than `min_unit_spikes` spikes is a fragment: it joins the nearest-shaped
+/// unit with enough spikes that passes the merge rules on templates (no
+/// dip test: too few spikes to test), or none.
+fn settle_fragments(
+    templates: &[Template],
+    summaries: &[TemplateSummary],
+    n_spikes: &[usize],
+    folded: &[Option<Echo>],
+    params: &ValidClusterParams,
+) -> Vec<Option<usize>> {
+    let n = templates.len();
+    let rules = params.merge_rules();
+    let whole = |u: usize| folded[u].is_none() && n_spikes[u] >= params.min_unit_spikes;
+    let mut home: Vec<Option<usize>> = (0..n)
+        .map(|u| {
+            if folded[u].is_some() || whole(u) {
+                return Some(u);
+            }
+            (0..n)
+                .filter(|&v| v != u && whole(v))
+                .filter(|&v| {
+                    let (a, b) = (&summaries[u], &summaries[v]);
+                    (a.x_um - b.x_um).hypot(a.y_um - b.y_um) <= rules.max_distance_um
+                })
+                .filter_map(|v| merge::align(&templates[v], &templates[u], rules.max_shift_frames).map(|a| (v, a)))
+                .filter(|(_, a)| {
+                    a.correlation >= rules.min_correlation && a.amplitude_ratio >= rules.min_amplitude_ratio
+                })
+                .max_by(|x, y| x.1.correlation.total_cmp(&y.1.correlation).then(y.0.cmp(&x.0)))
+                .map(|(v, _)| v)
+        })
+        .collect();
+    for u in 0..n {
+        if let Some(echo) = folded[u] {
+            home[u] = home[echo.source];
+        }
+    }
+    home
+}
+
+/// A folded echo, as a row of the echoes table.
+struct EchoLink {
+    unit_id: u32,
+    /// Main electrode of the echo.
+    channel: usize,
+    echo: Echo,
+    /// Spikes the echo had before it was folded.
+    n_spikes: usize,
+}
+
+/// `unit_echoes.parquet`: where and when each unit was seen again.
+fn write_echoes(
+    path: &Path,
+    links: &[EchoLink],
+    sample_rate_hz: f64,
+    metadata: &[(&str, String)],
+) -> Result<(), StageFailure> {
+    let ms = |frames: f64| frames * 1e3 / sample_rate_hz;
+    let batch = RecordBatch::try_new(
+        Arc::new(Schema::new(vec![
+            Field::new("unit_id", DataType::Int32, false),
+            Field::new("channel", DataType::Int32, false),
+            Field::new("delay_ms", DataType::Float64, false),
+            Field::new("jitter_ms", DataType::Float64, false),
+            Field::new("locked_spikes", DataType::Int64, false),
+            Field::new("echo_spikes", DataType::Int64, false),
+        ])),
+        vec![
+            Arc::new(Int32Array::from_iter_values(links.iter().map(|l| l.unit_id as i32))) as ArrayRef,
+            Arc::new(Int32Array::from_iter_values(links.iter().map(|l| l.channel as i32))),
+            Arc::new(Float64Array::from_iter_values(links.iter().map(|l| ms(l.echo.lag_frames)))),
+            Arc::new(Float64Array::from_iter_values(links.iter().map(|l| ms(l.echo.jitter_sd_frames)))),
+            Arc::new(Int64Array::from_iter_values(links.iter().map(|l| l.echo.locked as i64))),
+            Arc::new(Int64Array::from_iter_values(links.iter().map(|l| l.n_spikes as i64))),
+        ],
+    )
+    .expect("echo columns match their schema");
+    write_table(path, &batch, metadata)?;
+    Ok(())
+}
+
 /// Rows of the templates table written at a time.
 const TEMPLATE_ROWS_PER_BATCH: usize = 1 << 20;
 
@@ -365,19 +621,71 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
         measure_templates(&recording, &spikes, n_local_units, &unit_channels, &valid, request.seed, &features_path)?;
     let local_summaries: Vec<TemplateSummary> = local_templates.iter().map(|t| t.summarise(electrodes)).collect();
 
-    // 5. Merge, then number units by main electrode and amplitude.
-    let merged =
-        merge::merge_groups(&local_templates, &local_summaries, valid.merge_distance_um, valid.merge_min_correlation);
-    let n_merged = merged.iter().copied().max().map_or(0, |m| m + 1);
-    let templates: Vec<Template> = (0..n_merged)
-        .map(|g| {
-            merge::combine(
-                &local_templates.iter().zip(&merged).filter(|(_, &m)| m == g).map(|(t, _)| t).collect::<Vec<_>>(),
-            )
-        })
+    // 5. Merge units that are one neuron: templates alike in shape and
+    //    amplitude whose spikes form one mode on the axis between them.
+    let candidates = merge::candidate_pairs(&local_templates, &local_summaries, &valid.merge_rules());
+    let projections =
+        project_on_axes(&recording, &spikes, &candidates, n_local_units, &valid, request.seed, &features_path)?;
+    let accepted: Vec<(usize, usize)> = candidates
+        .iter()
+        .zip(&projections)
+        .filter(|(_, projected)| one_mode(projected, valid.merge_dip_alpha))
+        .map(|(c, _)| (c.a, c.b))
         .collect();
+    let by_dip = merge::merge_groups(n_local_units, accepted.iter().copied());
+    let n_by_dip = by_dip.iter().copied().max().map_or(0, |m| m + 1);
+    // Then smaller units that fire only inside a larger one's bursts.
+    let tails = {
+        let (templates, _) = combine_groups(&local_templates, &by_dip, n_by_dip, valid.merge_max_shift_frames);
+        let summaries: Vec<TemplateSummary> = templates.iter().map(|t| t.summarise(electrodes)).collect();
+        let mut trains: Vec<Vec<u64>> = vec![Vec::new(); n_by_dip];
+        for s in &spikes {
+            trains[by_dip[s.unit as usize]].push(s.sample);
+        }
+        burst_tail_pairs(&templates, &summaries, &trains, &valid)
+    };
+    let regroup = merge::merge_groups(n_by_dip, tails.iter().copied());
+    let merged: Vec<usize> = by_dip.iter().map(|&g| regroup[g]).collect();
+    let n_merged = merged.iter().copied().max().map_or(0, |m| m + 1);
+    let (templates, shifts) = combine_groups(&local_templates, &merged, n_merged, valid.merge_max_shift_frames);
     let summaries: Vec<TemplateSummary> = templates.iter().map(|t| t.summarise(electrodes)).collect();
-    let mut order: Vec<usize> = (0..n_merged).collect();
+    // One timing per unit: each spike moved by its cluster's alignment.
+    for spike in spikes.iter_mut() {
+        let local = spike.unit as usize;
+        spike.sample = spike.sample.saturating_add_signed(shifts[local]).min(recording.n_frames.saturating_sub(1));
+        spike.unit = merged[local] as u32;
+    }
+    spikes.sort_by_key(|s| (s.sample, s.event));
+
+    // 6. Echoes: units whose spikes are another's seen again, folded in.
+    let counts_of = |spikes: &[Assigned]| {
+        let mut n = vec![0usize; n_merged];
+        spikes.iter().for_each(|s| n[s.unit as usize] += 1);
+        n
+    };
+    let n_before_echoes = counts_of(&spikes);
+    let trains: Vec<(u64, usize)> = spikes.iter().map(|s| (s.sample, s.unit as usize)).collect();
+    let troughs: Vec<f64> = summaries.iter().map(|s| s.trough_uv).collect();
+    let echoes = echo::find_echoes(&trains, &n_before_echoes, &troughs, &valid.echo);
+    drop(trains);
+    let folded = echo::settle(&echoes, n_merged);
+    let echo_spikes_dropped = fold_echoes(&mut spikes, &folded, valid.echo.jitter_frames, recording.n_frames);
+
+    // 7. Fragments join a unit that explains them or leave the sort.
+    let home = settle_fragments(&templates, &summaries, &counts_of(&spikes), &folded, &valid);
+    let before_fragments = spikes.len();
+    spikes.retain_mut(|s| match home[s.unit as usize] {
+        Some(unit) => {
+            s.unit = unit as u32;
+            true
+        }
+        None => false,
+    });
+    let unassigned = before_fragments - spikes.len();
+
+    // 8. Number units by main electrode and amplitude.
+    let kept: Vec<usize> = (0..n_merged).filter(|&u| home[u] == Some(u)).collect();
+    let mut order = kept.clone();
     order.sort_by(|&a, &b| {
         summaries[a]
             .channel
@@ -385,17 +693,23 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
             .then(summaries[a].trough_uv.total_cmp(&summaries[b].trough_uv))
             .then(a.cmp(&b))
     });
-    let mut final_id = vec![0u32; n_merged];
+    let n_units = order.len();
+    let mut final_id = vec![u32::MAX; n_merged];
     for (id, &g) in order.iter().enumerate() {
         final_id[g] = id as u32;
     }
-    let merged_from: Vec<usize> = (0..n_merged).map(|g| merged.iter().filter(|&&m| m == g).count()).collect();
-    for spike in spikes.iter_mut() {
-        spike.unit = final_id[merged[spike.unit as usize]];
+    let mut merged_from = vec![0usize; n_merged];
+    for &g in &merged {
+        if let Some(unit) = home[g] {
+            merged_from[unit] += 1;
+        }
     }
-    // Spikes in sample order are already sorted; drop a unit's spike that
-    // follows its previous kept spike within the duplicate window.
-    let mut last_kept: Vec<Option<u64>> = vec![None; n_merged];
+    for spike in spikes.iter_mut() {
+        spike.unit = final_id[spike.unit as usize];
+    }
+    // Spikes in sample order: drop a unit's spike that follows its previous
+    // kept spike within the duplicate window.
+    let mut last_kept: Vec<Option<u64>> = vec![None; n_units];
     let before = spikes.len();
     spikes.retain(|s| {
         let slot = &mut last_kept[s.unit as usize];
@@ -406,8 +720,20 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
         true
     });
     let duplicates = before - spikes.len();
+    let echo_links: Vec<EchoLink> = (0..n_merged)
+        .filter_map(|u| {
+            let echo = folded[u]?;
+            let unit = home[echo.source]?;
+            Some(EchoLink {
+                unit_id: final_id[unit],
+                channel: summaries[u].channel,
+                echo,
+                n_spikes: n_before_echoes[u],
+            })
+        })
+        .collect();
 
-    // 6. Tables.
+    // 9. Tables.
     let metadata = request.table_metadata(EXECUTABLE, VERSION, &params);
     let fs = recording.sample_rate_hz;
     let spikes_batch = RecordBatch::try_new(
@@ -435,7 +761,7 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     .expect("spike columns match their schema");
     write_table(&request.output(SPIKES_TABLE), &spikes_batch, &metadata)?;
 
-    let mut n_spikes = vec![0i64; n_merged];
+    let mut n_spikes = vec![0i64; n_units];
     for s in &spikes {
         n_spikes[s.unit as usize] += 1;
     }
@@ -456,17 +782,17 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
             Field::new("small", DataType::Boolean, false),
         ])),
         vec![
-            Arc::new(Int32Array::from_iter_values((0..n_merged).map(|id| id as i32))) as ArrayRef,
+            Arc::new(Int32Array::from_iter_values((0..n_units).map(|id| id as i32))) as ArrayRef,
             Arc::new(Int32Array::from_iter_values(by_id.iter().map(|&g| summaries[g].channel as i32))),
             Arc::new(Float64Array::from_iter_values(by_id.iter().map(|&g| summaries[g].x_um))),
             Arc::new(Float64Array::from_iter_values(by_id.iter().map(|&g| summaries[g].y_um))),
-            Arc::new(Int64Array::from_iter_values((0..n_merged).map(|id| n_spikes[id]))),
-            Arc::new(Float64Array::from_iter_values((0..n_merged).map(|id| n_spikes[id] as f64 / duration))),
+            Arc::new(Int64Array::from_iter_values((0..n_units).map(|id| n_spikes[id]))),
+            Arc::new(Float64Array::from_iter_values((0..n_units).map(|id| n_spikes[id] as f64 / duration))),
             Arc::new(Float64Array::from_iter_values(by_id.iter().map(|&g| summaries[g].trough_uv))),
             Arc::new(Float64Array::from_iter_values(by_id.iter().map(|&g| summaries[g].peak_to_peak_uv))),
             Arc::new(Int32Array::from_iter_values(by_id.iter().map(|&g| templates[g].channels.len() as i32))),
             Arc::new(Int32Array::from_iter_values(by_id.iter().map(|&g| merged_from[g] as i32))),
-            Arc::new(BooleanArray::from_iter((0..n_merged).map(|id| Some((n_spikes[id] as usize) < valid.min_spikes)))),
+            Arc::new(BooleanArray::from_iter((0..n_units).map(|id| Some((n_spikes[id] as usize) < valid.min_spikes)))),
         ],
     )
     .expect("unit columns match their schema");
@@ -504,10 +830,23 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
         }
     }
     writer.finish()?;
+    write_echoes(&request.output(ECHOES_TABLE), &echo_links, fs, &metadata)?;
 
     let summary = &mut report.summary;
-    summary.insert("units".into(), n_merged.into());
+    summary.insert("units".into(), n_units.into());
     summary.insert("units_before_merge".into(), n_local_units.into());
+    summary.insert("merge_candidates".into(), candidates.len().into());
+    summary.insert("merges_refused_as_two_modes".into(), (candidates.len() - accepted.len()).into());
+    summary.insert("burst_tails_merged".into(), tails.len().into());
+    summary.insert("units_after_merge".into(), n_merged.into());
+    summary.insert("echo_units_folded".into(), echo_links.len().into());
+    summary.insert("echo_spikes_dropped".into(), echo_spikes_dropped.into());
+    summary.insert(
+        "fragments_joined".into(),
+        (0..n_merged).filter(|&u| folded[u].is_none() && home[u].is_some_and(|h| h != u)).count().into(),
+    );
+    summary.insert("fragments_unassigned".into(), (0..n_merged).filter(|&u| home[u].is_none()).count().into());
+    summary.insert("events_unassigned".into(), unassigned.into());
     summary.insert("small_units".into(), n_spikes.iter().filter(|&&n| (n as usize) < valid.min_spikes).count().into());
     summary.insert("spikes".into(), spikes.len().into());
     summary.insert("duplicates_dropped".into(), duplicates.into());

@@ -98,6 +98,23 @@ pub fn read_table(path: &Path) -> Result<Vec<RecordBatch>, ContractError> {
     reader.collect::<Result<Vec<_>, _>>().map_err(|source| ContractError::Arrow { path: path.to_path_buf(), source })
 }
 
+/// A small table as one batch (a table of no rows as an empty batch of its schema).
+///
+/// # Errors
+/// The file is missing or not Parquet, or a batch cannot be decoded.
+pub fn read_whole_table(path: &Path) -> Result<RecordBatch, ContractError> {
+    let file = File::open(path).map_err(|e| ContractError::io(path, e))?;
+    let builder = parquet::arrow::arrow_reader::ParquetRecordBatchReaderBuilder::try_new(file)
+        .map_err(|source| ContractError::Parquet { path: path.to_path_buf(), source })?;
+    let schema = builder.schema().clone();
+    let reader = builder.build().map_err(|source| ContractError::Parquet { path: path.to_path_buf(), source })?;
+    let batches = reader
+        .collect::<Result<Vec<_>, _>>()
+        .map_err(|source| ContractError::Arrow { path: path.to_path_buf(), source })?;
+    arrow_select::concat::concat_batches(&schema, &batches)
+        .map_err(|source| ContractError::Arrow { path: path.to_path_buf(), source })
+}
+
 /// Stream a table batch by batch (large tables: events, features, spikes).
 ///
 /// # Errors

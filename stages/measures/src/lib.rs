@@ -26,7 +26,7 @@ use arrow_array::{
 };
 use arrow_schema::{DataType, Field, Schema};
 use params::MeasuresParams;
-use spikeyard_contract::table::{column, for_each_batch, read_table, write_table};
+use spikeyard_contract::table::{column, for_each_batch, read_table, read_whole_table, write_table};
 use spikeyard_contract::{ContractError, StageFailure, StageReport, StageRequest};
 use std::collections::HashMap;
 use std::path::Path;
@@ -167,8 +167,7 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     let fs = recording.sample_rate_hz;
     let duration_s = recording.duration_s();
 
-    let units_batches = read_table(&units_path)?;
-    let units = arrow_select_concat(&units_path, &units_batches)?;
+    let units = read_whole_table(&units_path)?;
     let n_units = units.num_rows();
     let main_channel: Vec<usize> =
         column::<Int32Array>(&units_path, &units, "channel")?.values().iter().map(|&c| c.max(0) as usize).collect();
@@ -401,18 +400,6 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
         .summary
         .insert("units_with_isolation_distance".into(), isolation.iter().filter(|m| m.0.is_some()).count().into());
     Ok(report)
-}
-
-/// All batches of a small table as one.
-fn arrow_select_concat(path: &Path, batches: &[RecordBatch]) -> Result<RecordBatch, StageFailure> {
-    let Some(first) = batches.first() else {
-        return Err(StageFailure::bad_input(ContractError::Format {
-            path: path.to_path_buf(),
-            message: "the table has no rows".into(),
-        }));
-    };
-    arrow_select::concat::concat_batches(&first.schema(), batches)
-        .map_err(|source| StageFailure::failed(ContractError::Arrow { path: path.to_path_buf(), source }))
 }
 
 #[cfg(test)]
