@@ -122,6 +122,7 @@ fn bench_scenario(layout: &str, n_channels: usize, sample_rate_hz: f64, duration
         white_noise_uv: 6.0,
         dead_channels: vec![],
         noisy_channels: vec![],
+        network_burst_rate_hz: 0.0,
         seed: 42,
     })
 }

@@ -212,15 +212,17 @@ pub fn demo(out: &Path, scenario: &str, duration_s: f64, mode: ProgressMode) -> 
         println!("  {line}");
     }
     let good = comparison.truth.iter().filter(|m| m.accuracy() >= 0.8).count();
-    let small = read_small_units(&results_dir.join("units.parquet"))?;
-    let trusted: Vec<f64> =
-        comparison.sorted_best_accuracy.iter().filter(|(u, _)| !small.contains(u)).map(|(_, &a)| a).collect();
+    let strong_good =
+        strong.iter().filter(|u| comparison.truth.get(u.unit).is_some_and(|m| m.accuracy() >= 0.8)).count();
+    let counts = comparison.unit_counts();
     println!(
-        "  {good} of {} simulated units found at accuracy ≥ 0.8; {} of {} sorted units not flagged small match no simulated unit at ≥ 0.5 ({} small units not counted)",
+        "  {good} of {} simulated units found at accuracy ≥ 0.8 ({strong_good} of the {} at ≥ 5 σ); every one of the {} sorted units counted: {} false (matching no simulated unit at ≥ 0.5, {:.1} % of sorted spikes), {} merging two or more simulated units",
         comparison.truth.len(),
-        trusted.iter().filter(|&&a| a < 0.5).count(),
-        trusted.len(),
-        small.len()
+        strong.len(),
+        counts.units,
+        counts.false_units,
+        100.0 * counts.false_spike_share,
+        counts.merging
     );
     print!("{}", describe_propagation(&results_dir.join("propagation.parquet"), &comparison, &scenario)?);
     println!("\n  Research software: check results before drawing any conclusion. Not a medical device.");

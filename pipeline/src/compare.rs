@@ -4,6 +4,12 @@
 //! n_match / (n_gt + n_sorted − n_match), precision n_match / n_sorted,
 //! recall n_match / n_gt. Each ground-truth unit is paired with the sorted
 //! unit of highest accuracy.
+//!
+//! Every sorted unit is scored too, none left out: it **merges** neurons
+//! when it holds at least half the spikes of two or more ground-truth units
+//! (each at least a tenth of its own spikes), and it is **false** when it
+//! merges none and reaches accuracy 0.5 with no ground-truth unit (a
+//! fragment, a duplicate, an echo, noise).
 
 use arrow_array::{ArrayRef, Float64Array, Int32Array, Int64Array, RecordBatch};
 use arrow_schema::{DataType, Field, Schema};
@@ -101,11 +107,36 @@ pub struct Comparison {
     pub truth: Vec<UnitMatch>,
     /// Best accuracy of each sorted unit against any ground-truth unit.
     pub sorted_best_accuracy: BTreeMap<i64, f64>,
+    /// Every sorted unit's spikes and the ground-truth units it merges.
+    pub sorted: BTreeMap<i64, SortedScore>,
+}
+
+/// One sorted unit against the ground truth.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct SortedScore {
+    pub n_spikes: usize,
+    /// Ground-truth units of which it holds at least half the spikes, each
+    /// making at least a tenth of its own.
+    pub holds: Vec<i64>,
+}
+
+/// What the sorted units amount to.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct UnitCounts {
+    pub units: usize,
+    /// Units that merge two or more ground-truth units.
+    pub merging: usize,
+    /// Units that merge none and match none at accuracy ≥ 0.5.
+    pub false_units: usize,
+    /// Share of all sorted spikes that are in false units.
+    pub false_spike_share: f64,
 }
 
 /// Compare trains with a window of `window` samples.
 pub fn compare(truth: &Trains, sorted: &Trains, window: i64) -> Comparison {
     let mut sorted_best_accuracy: BTreeMap<i64, f64> = sorted.keys().map(|&u| (u, 0.0)).collect();
+    let mut scores: BTreeMap<i64, SortedScore> =
+        sorted.iter().map(|(&u, train)| (u, SortedScore { n_spikes: train.len(), holds: Vec::new() })).collect();
     let truth_matches = truth
         .iter()
         .map(|(&truth_unit, gt)| {
@@ -125,6 +156,9 @@ pub fn compare(truth: &Trains, sorted: &Trains, window: i64) -> Comparison {
                 let accuracy = candidate.accuracy();
                 let slot = sorted_best_accuracy.entry(sorted_unit).or_insert(0.0);
                 *slot = slot.max(accuracy);
+                if 2 * n_match >= gt.len() && 10 * n_match >= train.len() {
+                    scores.entry(sorted_unit).or_default().holds.push(truth_unit);
+                }
                 if accuracy > best.accuracy() {
                     best = candidate;
                 }
@@ -132,10 +166,29 @@ pub fn compare(truth: &Trains, sorted: &Trains, window: i64) -> Comparison {
             best
         })
         .collect();
-    Comparison { truth: truth_matches, sorted_best_accuracy }
+    Comparison { truth: truth_matches, sorted_best_accuracy, sorted: scores }
 }
 
 impl Comparison {
+    /// Every sorted unit counted: merging, false, and the false units' share of spikes.
+    pub fn unit_counts(&self) -> UnitCounts {
+        let merging = self.sorted.values().filter(|s| s.holds.len() >= 2).count();
+        let false_units: Vec<&i64> = self
+            .sorted
+            .iter()
+            .filter(|(u, s)| s.holds.len() < 2 && self.sorted_best_accuracy.get(u).is_none_or(|&a| a < 0.5))
+            .map(|(u, _)| u)
+            .collect();
+        let total: usize = self.sorted.values().map(|s| s.n_spikes).sum();
+        let in_false: usize = false_units.iter().map(|u| self.sorted[u].n_spikes).sum();
+        UnitCounts {
+            units: self.sorted.len(),
+            merging,
+            false_units: false_units.len(),
+            false_spike_share: if total == 0 { 0.0 } else { in_false as f64 / total as f64 },
+        }
+    }
+
     /// The per-ground-truth-unit table.
     pub fn to_batch(&self) -> RecordBatch {
         let rows = &self.truth;
@@ -210,6 +263,24 @@ mod tests {
         let s = Trains::from([(7, shifted)]);
         assert_eq!(compare(&t, &s, 8).truth[0].accuracy(), 1.0);
         assert_eq!(compare(&t, &s, 4).truth[0].accuracy(), 0.0);
+    }
+
+    #[test]
+    fn every_sorted_unit_is_counted_as_a_match_a_merge_or_false() {
+        let a: Vec<i64> = (0..100).map(|i| i * 1000).collect();
+        let b: Vec<i64> = (0..100).map(|i| i * 1000 + 500).collect();
+        let truth = Trains::from([(0, a.clone()), (1, b.clone())]);
+        let mut both = [a.clone(), b].concat();
+        both.sort_unstable();
+        let fragment: Vec<i64> = a.iter().take(10).copied().collect();
+        let noise: Vec<i64> = (0..30).map(|i| i * 1000 + 250).collect();
+        let sorted = Trains::from([(0, a), (1, both), (2, fragment), (3, noise)]);
+        let comparison = compare(&truth, &sorted, 5);
+        assert_eq!(comparison.sorted[&1].holds, vec![0, 1]);
+        let counts = comparison.unit_counts();
+        // Unit 0 matches, 1 merges, 2 (a tenth of a neuron) and 3 are false: 40 of 340 spikes.
+        assert_eq!((counts.units, counts.merging, counts.false_units), (4, 1, 2));
+        assert!((counts.false_spike_share - 40.0 / 340.0).abs() < 1e-12);
     }
 
     #[test]

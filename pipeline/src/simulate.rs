@@ -130,11 +130,14 @@ pub struct Scenario {
     pub dead_channels: Vec<usize>,
     /// Channels with several times the usual noise.
     pub noisy_channels: Vec<usize>,
+    /// Network bursts per second: the whole culture fires together, each
+    /// unit (with probability 0.8) 1–4 shrinking spikes within 60 ms.
+    pub network_burst_rate_hz: f64,
     pub seed: u64,
 }
 
 /// Names of the built-in scenarios.
-pub const SCENARIOS: [&str; 2] = ["sparse-grid", "dense-axons"];
+pub const SCENARIOS: [&str; 4] = ["sparse-grid", "dense-axons", "culture", "dense-culture"];
 
 /// A rectangular grid of electrodes, row by row, labelled RrrCcc.
 pub fn grid(n_rows: usize, n_columns: usize, pitch_um: f64) -> Vec<Electrode> {
@@ -158,6 +161,8 @@ impl Scenario {
         match name {
             "sparse-grid" => Some(Self::sparse_grid(duration_s, seed)),
             "dense-axons" => Some(Self::dense_axons(duration_s, seed)),
+            "culture" => Some(Self::culture(duration_s, seed)),
+            "dense-culture" => Some(Self::dense_culture(duration_s, seed)),
             _ => None,
         }
     }
@@ -206,6 +211,7 @@ impl Scenario {
             white_noise_uv: 6.0,
             dead_channels: vec![7],
             noisy_channels: vec![42],
+            network_burst_rate_hz: 0.0,
             seed,
         }
     }
@@ -255,6 +261,122 @@ impl Scenario {
             white_noise_uv: 6.0,
             dead_channels: vec![],
             noisy_channels: vec![],
+            network_burst_rate_hz: 0.0,
+            seed,
+        }
+    }
+
+    /// A harder culture on the 8×8 grid at 200 µm, 20 kHz: twenty neurons
+    /// on twelve electrodes, eight of which hold two neurons of nearly one
+    /// shape and different amplitudes (a third to two thirds of the
+    /// larger); amplitudes crowd towards the detection threshold; bursts of
+    /// shrinking spikes and network bursts every few seconds; one axon
+    /// along a row; the channel order is shuffled, not the grid's.
+    pub fn culture(duration_s: f64, seed: u64) -> Scenario {
+        let grid_electrodes = grid(8, 8, 200.0);
+        let mut rng = TestRng::new(seed ^ 0x5EED_0003);
+        let electrodes = shuffled_channels(&grid_electrodes, &mut rng);
+        let peaks = [150.0, 120.0, 100.0, 90.0, 80.0, 72.0, 65.0, 60.0, 55.0, 50.0, 46.0, 42.0];
+        let homes = [9usize, 12, 18, 21, 27, 30, 33, 36, 45, 50, 53, 58];
+        let partner_ratio = [0.3, 0.55, 0.4, 0.65, 0.5, 0.7, 0.6, 0.75];
+        let mut units = Vec::new();
+        for (i, (&peak_uv, home)) in peaks.iter().zip(homes).enumerate() {
+            let e = &grid_electrodes[home];
+            let (x_um, y_um) = (e.x_um + 30.0 * (rng.uniform() - 0.5), e.y_um + 30.0 * (rng.uniform() - 0.5));
+            let trough_ms = 0.10 + 0.05 * rng.uniform();
+            let axon = (i == 1).then(|| Axon::straight((x_um, y_um), (1400.0, e.y_um), 0.6, 22.0));
+            units.push(UnitSpec {
+                x_um,
+                y_um,
+                z_um: 20.0 + 10.0 * rng.uniform(),
+                peak_uv,
+                rate_hz: 1.0 + 7.0 * rng.uniform(),
+                burst_probability: if i % 3 == 0 { 0.15 } else { 0.03 },
+                trough_ms,
+                axon,
+            });
+            if let Some(&ratio) = partner_ratio.get(i) {
+                let angle = std::f64::consts::TAU * rng.uniform();
+                units.push(UnitSpec {
+                    x_um: x_um + 20.0 * angle.cos(),
+                    y_um: y_um + 20.0 * angle.sin(),
+                    z_um: 25.0 + 10.0 * rng.uniform(),
+                    peak_uv: peak_uv * ratio,
+                    rate_hz: 1.0 + 7.0 * rng.uniform(),
+                    burst_probability: 0.05,
+                    trough_ms: trough_ms + 0.02 * (rng.uniform() - 0.5),
+                    axon: None,
+                });
+            }
+        }
+        Scenario {
+            name: "culture".into(),
+            sample_rate_hz: 20000.0,
+            duration_s,
+            electrodes,
+            units,
+            white_noise_uv: 6.0,
+            dead_channels: vec![],
+            noisy_channels: vec![],
+            network_burst_rate_hz: 0.2,
+            seed,
+        }
+    }
+
+    /// A dense 32×32 patch at 17.5 µm, 20 kHz: twelve neurons, six with
+    /// axons crossing the patch (0.3–1.2 m/s), some close enough to share
+    /// electrodes; network bursts; shuffled channel order.
+    pub fn dense_culture(duration_s: f64, seed: u64) -> Scenario {
+        let grid_electrodes = grid(32, 32, 17.5);
+        let mut rng = TestRng::new(seed ^ 0x5EED_0004);
+        let electrodes = shuffled_channels(&grid_electrodes, &mut rng);
+        let positions = [
+            (80.0, 90.0),
+            (110.0, 100.0),
+            (300.0, 80.0),
+            (450.0, 120.0),
+            (470.0, 140.0),
+            (150.0, 300.0),
+            (320.0, 280.0),
+            (90.0, 460.0),
+            (260.0, 470.0),
+            (450.0, 430.0),
+            (200.0, 180.0),
+            (380.0, 360.0),
+        ];
+        let peaks = [140.0, 70.0, 120.0, 100.0, 55.0, 90.0, 110.0, 80.0, 65.0, 130.0, 60.0, 75.0];
+        let units = positions
+            .iter()
+            .zip(peaks)
+            .enumerate()
+            .map(|(i, (&(x_um, y_um), peak_uv))| {
+                let axon = (i % 2 == 0).then(|| {
+                    let to = (540.0 - x_um * 0.8, 540.0 - y_um * 0.9);
+                    let control = (x_um + 100.0 * (rng.uniform() - 0.5), to.1);
+                    Axon::curved((x_um, y_um), control, to, 0.3 + 0.18 * i as f64 / 2.0, 25.0)
+                });
+                UnitSpec {
+                    x_um,
+                    y_um,
+                    z_um: 15.0 + 15.0 * rng.uniform(),
+                    peak_uv,
+                    rate_hz: 1.0 + 7.0 * rng.uniform(),
+                    burst_probability: 0.08,
+                    trough_ms: 0.10 + 0.05 * rng.uniform(),
+                    axon,
+                }
+            })
+            .collect();
+        Scenario {
+            name: "dense-culture".into(),
+            sample_rate_hz: 20000.0,
+            duration_s,
+            electrodes,
+            units,
+            white_noise_uv: 6.0,
+            dead_channels: vec![],
+            noisy_channels: vec![],
+            network_burst_rate_hz: 0.2,
             seed,
         }
     }
@@ -262,6 +384,17 @@ impl Scenario {
     pub fn n_frames(&self) -> u64 {
         (self.duration_s * self.sample_rate_hz).round() as u64
     }
+}
+
+/// The same electrodes stored in a shuffled channel order (as many
+/// amplifiers number them): channel c sits where `grid` has a random other
+/// electrode, labels following positions.
+fn shuffled_channels(grid: &[Electrode], rng: &mut TestRng) -> Vec<Electrode> {
+    let mut order: Vec<usize> = (0..grid.len()).collect();
+    for i in (1..order.len()).rev() {
+        order.swap(i, (rng.uniform() * (i + 1) as f64) as usize % (i + 1));
+    }
+    order.iter().enumerate().map(|(channel, &at)| Electrode { channel, ..grid[at].clone() }).collect()
 }
 
 /// Soma waveform (trough at t = 0, normalised to −1), t in ms.
@@ -383,9 +516,46 @@ pub fn spike_trains(scenario: &Scenario) -> Vec<TruthSpike> {
             t = last + refractory_s + (-rng.uniform().ln()) / free_rate;
         }
     }
+    add_network_bursts(scenario, &mut spikes);
     spikes.retain(|s| s.sample < n_frames);
     spikes.sort_by_key(|s| (s.sample, s.unit));
+    // A unit's spikes closer than its refractory period: the later goes.
+    let refractory = (refractory_s * fs) as u64;
+    let mut last: Vec<Option<u64>> = vec![None; scenario.units.len()];
+    spikes.retain(|s| {
+        let keep = last[s.unit].is_none_or(|l| s.sample >= l + refractory);
+        if keep {
+            last[s.unit] = Some(s.sample);
+        }
+        keep
+    });
     spikes
+}
+
+/// Network bursts at `network_burst_rate_hz` (Poisson): each unit, with
+/// probability 0.8, fires 1–4 spikes from 0–40 ms after the burst's start,
+/// 5–20 ms apart, shrinking by 0.9 a spike.
+fn add_network_bursts(scenario: &Scenario, spikes: &mut Vec<TruthSpike>) {
+    if scenario.network_burst_rate_hz <= 0.0 {
+        return;
+    }
+    let fs = scenario.sample_rate_hz;
+    let mut rng = TestRng::new(scenario.seed.wrapping_mul(31).wrapping_add(0xB0B5));
+    let mut t = (-rng.uniform().ln()) / scenario.network_burst_rate_hz;
+    while t < scenario.duration_s - 0.2 {
+        for unit in 0..scenario.units.len() {
+            if rng.uniform() >= 0.8 {
+                continue;
+            }
+            let mut at = t + 0.04 * rng.uniform();
+            let n = 1 + (rng.uniform() * 4.0) as i32;
+            for k in 0..n {
+                spikes.push(TruthSpike { unit, sample: (at * fs).round() as u64, scale: 0.9f32.powi(k) });
+                at += 0.005 + 0.015 * rng.uniform();
+            }
+        }
+        t += (-rng.uniform().ln()) / scenario.network_burst_rate_hz;
+    }
 }
 
 /// Per-channel noise state carried across chunks.

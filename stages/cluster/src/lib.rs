@@ -33,6 +33,7 @@ pub mod echo;
 pub mod merge;
 pub mod model;
 pub mod params;
+pub mod split;
 
 use arrow_array::{
     Array, ArrayRef, BooleanArray, FixedSizeListArray, Float32Array, Float64Array, Int32Array, Int64Array, RecordBatch,
@@ -47,6 +48,7 @@ use spikeyard_contract::events::{channel_runs, for_each_event_window, ChannelRun
 use spikeyard_contract::sampling::keep;
 use spikeyard_contract::table::{column, for_each_batch, write_table, TableWriter};
 use spikeyard_contract::{ContractError, ProgressReporter, Recording, StageFailure, StageReport, StageRequest};
+use split::SplitRules;
 use std::path::Path;
 use std::sync::Arc;
 
@@ -198,6 +200,12 @@ pub struct Assigned {
     pub y_um: f32,
 }
 
+/// Whether spike `index` (of a unit of `count` spikes) is among those its
+/// unit's template averages: a seeded subset of `template_spikes`.
+fn in_template(seed: u64, index: usize, count: usize, params: &ValidClusterParams) -> bool {
+    keep(seed, 0x7E3D, index as u64, params.template_spikes as f64 / count.max(1) as f64)
+}
+
 /// Mean waveforms of a seeded subset of each unit's spikes, one pass over the recording.
 fn measure_templates(
     recording: &Recording,
@@ -218,10 +226,8 @@ fn measure_templates(
     let mut sums: Vec<Vec<f64>> = unit_channels.iter().map(|c| vec![0.0; length * c.len()]).collect();
     let runs: Vec<Vec<ChannelRun>> = unit_channels.iter().map(|c| channel_runs(c.iter().copied())).collect();
     let mut averaged = vec![0usize; n_units];
-    let chosen_spikes = spikes.iter().enumerate().filter(|(i, s)| {
-        let probability = params.template_spikes as f64 / counts[s.unit as usize].max(1) as f64;
-        keep(seed, 0x7E3D, *i as u64, probability)
-    });
+    let chosen_spikes =
+        spikes.iter().enumerate().filter(|(i, s)| in_template(seed, *i, counts[s.unit as usize], params));
     let events = chosen_spikes.map(|(i, s)| {
         Ok(EventRecord { index: i as u64, sample: s.sample, channel: s.channel as usize, amplitude_uv: s.amplitude_uv })
     });
@@ -273,6 +279,34 @@ fn measure_templates(
         .collect())
 }
 
+/// Split every cluster whose spike amplitudes form two modes
+/// ([`split::amplitude_boundary`]): the spikes above the boundary become a
+/// new cluster of the same electrode group. Returns the number of clusters.
+fn split_bimodal_clusters(spikes: &mut [Assigned], unit_group: &mut Vec<usize>, rules: &SplitRules) -> usize {
+    let n_units = unit_group.len();
+    let mut amplitudes: Vec<Vec<f64>> = vec![Vec::new(); n_units];
+    for s in spikes.iter() {
+        amplitudes[s.unit as usize].push(s.amplitude_uv as f64);
+    }
+    let boundaries: Vec<Option<f64>> = amplitudes.par_iter().map(|a| split::amplitude_boundary(a, rules)).collect();
+    let mut new_unit = vec![None; n_units];
+    for (unit, boundary) in boundaries.iter().enumerate() {
+        if boundary.is_some() {
+            new_unit[unit] = Some(unit_group.len());
+            unit_group.push(unit_group[unit]);
+        }
+    }
+    for s in spikes.iter_mut() {
+        let unit = s.unit as usize;
+        if let (Some(boundary), Some(new)) = (boundaries[unit], new_unit[unit]) {
+            if s.amplitude_uv as f64 > boundary {
+                s.unit = new as u32;
+            }
+        }
+    }
+    unit_group.len()
+}
+
 /// A candidate pair's projected spikes: unit a's, then unit b's.
 type Projected = (Vec<f64>, Vec<f64>);
 
@@ -280,10 +314,12 @@ type Projected = (Vec<f64>, Vec<f64>);
 /// (`merge_test_spikes` a unit) on the pair's axis, in one pass over the
 /// recording: per candidate, a's values and b's (b read at its aligned
 /// time). A spike's projection is its waveform on the axis electrodes,
-/// dotted with the axis (µV²; the scale does not matter to the dip).
+/// dotted with the axis (µV²; the scale does not matter to the dip), left
+/// out of its own template ([`Candidate::projection`]).
 fn project_on_axes(
     recording: &Recording,
     spikes: &[Assigned],
+    templates: &[Template],
     candidates: &[Candidate],
     n_units: usize,
     params: &ValidClusterParams,
@@ -324,11 +360,14 @@ fn project_on_axes(
             Vec::new,
             |block, (((on_a, on_b), candidate), runs)| {
                 block.resize(candidate.axis.len(), 0.0f32);
-                for (unit, shift, out) in [(candidate.a, 0, on_a), (candidate.b, candidate.alignment.shift, on_b)] {
+                let sides = [(candidate.a, false, 0, on_a), (candidate.b, true, candidate.alignment.shift, on_b)];
+                for (unit, is_b, shift, out) in sides {
                     for &i in &by_unit[unit] {
-                        let first = window.events[i].sample as i64 + shift - before;
-                        window.copy_runs(first, runs, n_channels, block);
-                        out.push(block.iter().zip(&candidate.axis).map(|(&v, &w)| v as f64 * w).sum());
+                        let event = &window.events[i];
+                        window.copy_runs(event.sample as i64 + shift - before, runs, n_channels, block);
+                        let own = in_template(seed, event.index as usize, counts[unit], params)
+                            .then_some((is_b, templates[unit].n_averaged));
+                        out.push(candidate.projection(block, own));
                     }
                 }
             },
@@ -338,16 +377,26 @@ fn project_on_axes(
     Ok(projections)
 }
 
-/// Whether a pair's projected spikes form one mode: Hartigan's dip test
-/// (see [`dip`]) p at least `alpha`. Fewer than 8 spikes cannot tell, and
-/// the templates' likeness decides.
-fn one_mode(projected: &Projected, alpha: f64) -> bool {
-    let mut values: Vec<f64> = projected.0.iter().chain(&projected.1).copied().collect();
+/// The p-value of Hartigan's dip test (see [`dip`]) on a pair's projected
+/// spikes: small when they form more than one mode. The two units' values
+/// are first thinned to the same share of each unit's spikes (`n_spikes`),
+/// so that the pair is tested in its real proportions: one neuron split by
+/// a boundary is two halves of one mode only when both halves weigh what
+/// they do. Under 8 spikes cannot tell (1: the templates' likeness decides).
+fn dip_p(projected: &Projected, n_spikes: (usize, usize)) -> f64 {
+    let share = |values: &[f64], n: usize| values.len() as f64 / n.max(1) as f64;
+    let common = share(&projected.0, n_spikes.0).min(share(&projected.1, n_spikes.1));
+    let thin = |values: &[f64], n: usize| -> Vec<f64> {
+        let keep = ((common * n as f64).round() as usize).min(values.len());
+        (0..keep).map(|i| values[i * values.len() / keep.max(1)]).collect()
+    };
+    let mut values = thin(&projected.0, n_spikes.0);
+    values.extend(thin(&projected.1, n_spikes.1));
     if values.len() < 8 {
-        return true;
+        return 1.0;
     }
     values.sort_by(f64::total_cmp);
-    dip::dip_test(&values).1 >= alpha
+    dip::dip_test(&values).1
 }
 
 /// The templates of merged groups: each group's members aligned on the
@@ -604,6 +653,10 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
         Ok(())
     })?;
 
+    // 3b. A cluster whose amplitudes form two modes is two neurons.
+    let n_fitted_units = n_local_units;
+    let n_local_units = split_bimodal_clusters(&mut spikes, &mut unit_group, &valid.split);
+
     // 4. Templates of the local units.
     let electrodes = &recording.electrodes;
     let unit_channels: Vec<Vec<usize>> = unit_group
@@ -623,16 +676,33 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
 
     // 5. Merge units that are one neuron: templates alike in shape and
     //    amplitude whose spikes form one mode on the axis between them.
-    let candidates = merge::candidate_pairs(&local_templates, &local_summaries, &valid.merge_rules());
-    let projections =
-        project_on_axes(&recording, &spikes, &candidates, n_local_units, &valid, request.seed, &features_path)?;
-    let accepted: Vec<(usize, usize)> = candidates
+    let anchor = valid.template_before_frames as i64;
+    let candidates =
+        merge::candidate_pairs(&local_templates, &local_summaries, &unit_group, anchor, &valid.merge_rules());
+    let projections = project_on_axes(
+        &recording,
+        &spikes,
+        &local_templates,
+        &candidates,
+        n_local_units,
+        &valid,
+        request.seed,
+        &features_path,
+    )?;
+    // Most unimodal pairs first; a refused pair is never chained together.
+    let mut local_counts = vec![0usize; n_local_units];
+    spikes.iter().for_each(|s| local_counts[s.unit as usize] += 1);
+    let mut tested: Vec<(f64, usize, usize)> = candidates
         .iter()
         .zip(&projections)
-        .filter(|(_, projected)| one_mode(projected, valid.merge_dip_alpha))
-        .map(|(c, _)| (c.a, c.b))
+        .map(|(c, projected)| (dip_p(projected, (local_counts[c.a], local_counts[c.b])), c.a, c.b))
         .collect();
-    let by_dip = merge::merge_groups(n_local_units, accepted.iter().copied());
+    tested.sort_by(|x, y| y.0.total_cmp(&x.0).then((x.1, x.2).cmp(&(y.1, y.2))));
+    let accepted: Vec<(usize, usize)> =
+        tested.iter().filter(|t| t.0 >= valid.merge_dip_alpha).map(|t| (t.1, t.2)).collect();
+    let refused: Vec<(usize, usize)> =
+        tested.iter().filter(|t| t.0 < valid.merge_dip_alpha).map(|t| (t.1, t.2)).collect();
+    let by_dip = merge::merge_groups(n_local_units, accepted.iter().copied(), &refused);
     let n_by_dip = by_dip.iter().copied().max().map_or(0, |m| m + 1);
     // Then smaller units that fire only inside a larger one's bursts.
     let tails = {
@@ -644,7 +714,7 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
         }
         burst_tail_pairs(&templates, &summaries, &trains, &valid)
     };
-    let regroup = merge::merge_groups(n_by_dip, tails.iter().copied());
+    let regroup = merge::merge_groups(n_by_dip, tails.iter().copied(), &[]);
     let merged: Vec<usize> = by_dip.iter().map(|&g| regroup[g]).collect();
     let n_merged = merged.iter().copied().max().map_or(0, |m| m + 1);
     let (templates, shifts) = combine_groups(&local_templates, &merged, n_merged, valid.merge_max_shift_frames);
@@ -834,6 +904,8 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
 
     let summary = &mut report.summary;
     summary.insert("units".into(), n_units.into());
+    summary.insert("clusters_fitted".into(), n_fitted_units.into());
+    summary.insert("clusters_split_by_amplitude".into(), (n_local_units - n_fitted_units).into());
     summary.insert("units_before_merge".into(), n_local_units.into());
     summary.insert("merge_candidates".into(), candidates.len().into());
     summary.insert("merges_refused_as_two_modes".into(), (candidates.len() - accepted.len()).into());

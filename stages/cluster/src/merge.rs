@@ -151,12 +151,66 @@ pub struct Candidate {
     /// peak-to-peak is at least a fifth of the largest among them.
     pub channels: Vec<usize>,
     /// a − b (aligned) on those electrodes, frame-major (frame k, then the
-    /// electrodes in order) over a's frames, 0 where b has no frame.
+    /// electrodes in order) over a's frames, 0 where b has no frame, less
+    /// its parts along the two waveforms' slopes (timing, not shape).
     pub axis: Vec<f64>,
+    /// Entries of the axis left out (detection electrodes near the sample).
+    pub masked: Vec<bool>,
+    /// Orthonormal directions removed from the axis (the slopes).
+    pub removed: Vec<Vec<f64>>,
+    /// a's and b's templates (b aligned), frame-major like the axis.
+    pub a_values: Vec<f64>,
+    pub b_values: Vec<f64>,
 }
 
+impl Candidate {
+    /// A spike's projection on the axis, from its waveform on the axis
+    /// electrodes (frame-major, read at a's timing). A spike that was
+    /// averaged into its own unit's template (`own`: whether the unit is b,
+    /// and how many spikes that template averaged) is projected on the axis
+    /// made without it (leave one out): otherwise each spike leans towards
+    /// its own unit's template by its own noise, and two halves of one
+    /// neuron would look like two modes.
+    pub fn projection(&self, waveform: &[f32], own: Option<(bool, usize)>) -> f64 {
+        let mut y: Vec<f64> =
+            waveform.iter().zip(&self.masked).map(|(&v, &m)| if m { 0.0 } else { v as f64 }).collect();
+        remove(&mut y, &self.removed);
+        let dot = |x: &[f64], z: &[f64]| x.iter().zip(z).map(|(p, q)| p * q).sum::<f64>();
+        let plain = dot(&y, &self.axis);
+        match own {
+            Some((is_b, n)) if n > 1 => {
+                let template = if is_b { &self.b_values } else { &self.a_values };
+                let correction = (dot(&y, template) - dot(&y, &y)) / (n - 1) as f64;
+                if is_b {
+                    plain - correction
+                } else {
+                    plain + correction
+                }
+            }
+            _ => plain,
+        }
+    }
+}
+
+/// Frames on each side of the spike's own sample that the axis leaves out
+/// on the electrodes the two units were detected on (see [`candidate_pairs`]).
+const DETECTION_GUARD_FRAMES: i64 = 2;
+
 /// Every pair of units that [`MergeRules`] lets through, in order of (a, b).
-pub fn candidate_pairs(templates: &[Template], summaries: &[TemplateSummary], rules: &MergeRules) -> Vec<Candidate> {
+///
+/// `detected_on` is each unit's detection electrode and `anchor` the frame
+/// of the spike's own sample in a template. When two units were detected
+/// on different electrodes, the axis leaves out those electrodes within
+/// ±2 frames of each unit's sample: there every spike carries the noise
+/// that made its electrode win and marked its sample, which would part
+/// one neuron's spikes by where they were detected.
+pub fn candidate_pairs(
+    templates: &[Template],
+    summaries: &[TemplateSummary],
+    detected_on: &[usize],
+    anchor: i64,
+    rules: &MergeRules,
+) -> Vec<Candidate> {
     let n = templates.len();
     let pairs: Vec<(usize, usize)> = (0..n)
         .flat_map(|a| (a + 1..n).map(move |b| (a, b)))
@@ -175,22 +229,78 @@ pub fn candidate_pairs(templates: &[Template], summaries: &[TemplateSummary], ru
             let (ta, tb) = (&templates[a], &templates[b]);
             let rows = visible_shared(ta, tb);
             let length = ta.values.first().map_or(0, Vec::len) as i64;
-            let mut axis = vec![0.0; length as usize * rows.len()];
-            for k in 0..length {
-                let kb = k + alignment.shift;
-                for (p, (_, ra, rb)) in rows.iter().enumerate() {
-                    let b_value = if (0..length).contains(&kb) { rb[kb as usize] } else { 0.0 };
-                    axis[k as usize * rows.len() + p] = ra[k as usize] - b_value;
+            let at = |row: &[f64], k: i64| if (0..length).contains(&k) { row[k as usize] } else { 0.0 };
+            let frame_major = |value: &dyn Fn(&[f64], &[f64], i64) -> f64| -> Vec<f64> {
+                (0..length).flat_map(|k| rows.iter().map(move |(_, ra, rb)| value(ra, rb, k))).collect()
+            };
+            let shift = alignment.shift;
+            let mut axis = frame_major(&|ra, rb, k| at(ra, k) - at(rb, k + shift));
+            // Without the two waveforms' slopes: a spike's timing jitter
+            // (which electrode's sample marked it) moves it along the slope,
+            // and would part one neuron's spikes in two.
+            let mut slope_a = frame_major(&|ra, _, k| 0.5 * (at(ra, k + 1) - at(ra, k - 1)));
+            let mut slope_b = frame_major(&|_, rb, k| 0.5 * (at(rb, k + shift + 1) - at(rb, k + shift - 1)));
+            if detected_on[a] != detected_on[b] {
+                for (p, (channel, _, _)) in rows.iter().enumerate() {
+                    if *channel != detected_on[a] && *channel != detected_on[b] {
+                        continue;
+                    }
+                    for centre in [anchor, anchor - shift] {
+                        for k in (centre - DETECTION_GUARD_FRAMES)..=(centre + DETECTION_GUARD_FRAMES) {
+                            if (0..length).contains(&k) {
+                                let i = k as usize * rows.len() + p;
+                                (axis[i], slope_a[i], slope_b[i]) = (0.0, 0.0, 0.0);
+                            }
+                        }
+                    }
                 }
             }
-            Some(Candidate { a, b, alignment, channels: rows.iter().map(|r| r.0).collect(), axis })
+            let masked: Vec<bool> = slope_a.iter().zip(&axis).map(|(&s, &w)| s == 0.0 && w == 0.0).collect();
+            let removed = orthonormal_basis(&[slope_a, slope_b]);
+            remove(&mut axis, &removed);
+            let a_values = frame_major(&|ra, _, k| at(ra, k));
+            let b_values = frame_major(&|_, rb, k| at(rb, k + shift));
+            let channels = rows.iter().map(|r| r.0).collect();
+            Some(Candidate { a, b, alignment, channels, axis, masked, removed, a_values, b_values })
         })
         .collect()
 }
 
-/// Group units linked by accepted pairs (merging is transitive). Returns
-/// each unit's group, numbered from 0 in order of each group's first unit.
-pub fn merge_groups(n_units: usize, accepted: impl IntoIterator<Item = (usize, usize)>) -> Vec<usize> {
+/// An orthonormal basis of `directions` (Gram–Schmidt; negligible ones are skipped).
+fn orthonormal_basis(directions: &[Vec<f64>]) -> Vec<Vec<f64>> {
+    let dot = |x: &[f64], y: &[f64]| x.iter().zip(y).map(|(a, b)| a * b).sum::<f64>();
+    let mut basis: Vec<Vec<f64>> = Vec::new();
+    for direction in directions {
+        let scale = dot(direction, direction).sqrt();
+        let mut d = direction.clone();
+        remove(&mut d, &basis);
+        let norm = dot(&d, &d).sqrt();
+        if norm > 1e-9 * scale && norm > 0.0 {
+            d.iter_mut().for_each(|x| *x /= norm);
+            basis.push(d);
+        }
+    }
+    basis
+}
+
+/// Remove from `vector` its components along the orthonormal `basis`.
+fn remove(vector: &mut [f64], basis: &[Vec<f64>]) {
+    for b in basis {
+        let c: f64 = vector.iter().zip(b).map(|(x, y)| x * y).sum();
+        vector.iter_mut().zip(b).for_each(|(x, y)| *x -= c * y);
+    }
+}
+
+/// Group units linked by accepted pairs, in the order given (merging is
+/// transitive), except that two groups holding a `refused` pair between
+/// them are never joined: a pair the dip test found to be two neurons
+/// cannot be chained together through a third unit. Returns each unit's
+/// group, numbered from 0 in order of each group's first unit.
+pub fn merge_groups(
+    n_units: usize,
+    accepted: impl IntoIterator<Item = (usize, usize)>,
+    refused: &[(usize, usize)],
+) -> Vec<usize> {
     let mut parent: Vec<usize> = (0..n_units).collect();
     fn root(parent: &mut [usize], mut i: usize) -> usize {
         while parent[i] != i {
@@ -201,7 +311,16 @@ pub fn merge_groups(n_units: usize, accepted: impl IntoIterator<Item = (usize, u
     }
     for (a, b) in accepted {
         let (ra, rb) = (root(&mut parent, a), root(&mut parent, b));
-        parent[ra.max(rb)] = ra.min(rb);
+        if ra == rb {
+            continue;
+        }
+        let apart = refused.iter().any(|&(x, y)| {
+            let (rx, ry) = (root(&mut parent, x), root(&mut parent, y));
+            (rx == ra && ry == rb) || (rx == rb && ry == ra)
+        });
+        if !apart {
+            parent[ra.max(rb)] = ra.min(rb);
+        }
     }
     let mut numbering = vec![usize::MAX; n_units];
     let mut next = 0;
@@ -266,7 +385,11 @@ mod tests {
     fn candidates(templates: &[Template], max_distance_um: f64) -> Vec<(usize, usize, i64)> {
         let summaries: Vec<_> = templates.iter().map(|t| t.summarise(&electrodes())).collect();
         let rules = MergeRules { max_distance_um, min_correlation: 0.9, min_amplitude_ratio: 0.6, max_shift_frames: 3 };
-        candidate_pairs(templates, &summaries, &rules).iter().map(|c| (c.a, c.b, c.alignment.shift)).collect()
+        let detected_on = vec![0; templates.len()];
+        candidate_pairs(templates, &summaries, &detected_on, 5, &rules)
+            .iter()
+            .map(|c| (c.a, c.b, c.alignment.shift))
+            .collect()
     }
 
     #[test]
@@ -293,8 +416,39 @@ mod tests {
     }
 
     #[test]
+    fn the_axis_ignores_timing_but_keeps_amplitude() {
+        // b is a two-thirds copy of a: the axis is along the waveform itself.
+        let a = template(&[0, 1], 30.0, 0);
+        let b = template(&[0, 1], 20.0, 0);
+        let summaries: Vec<_> = [&a, &b].iter().map(|t| t.summarise(&electrodes())).collect();
+        let rules =
+            MergeRules { max_distance_um: 40.0, min_correlation: 0.9, min_amplitude_ratio: 0.5, max_shift_frames: 0 };
+        let candidate = &candidate_pairs(&[a.clone(), b], &summaries, &[0, 0], 5, &rules)[0];
+        let waveform: Vec<f64> = (0..16).flat_map(|k| [a.values[0][k], a.values[1][k]]).collect();
+        let dot = |x: &[f64], y: &[f64]| x.iter().zip(y).map(|(p, q)| p * q).sum::<f64>();
+        let cosine = dot(&candidate.axis, &waveform)
+            / (dot(&candidate.axis, &candidate.axis) * dot(&waveform, &waveform)).sqrt();
+        assert!(cosine > 0.99, "{cosine}");
+        // A copy of a a fraction of a frame late projects where a does.
+        let late: Vec<f64> = (0..16)
+            .flat_map(|k| {
+                let v = -30.0 * (-(k as f64 - 5.3).powi(2) / 4.0).exp();
+                [v, v]
+            })
+            .collect();
+        let (on_a, on_late) = (dot(&candidate.axis, &waveform), dot(&candidate.axis, &late));
+        assert!((on_a - on_late).abs() < 0.02 * on_a.abs(), "{on_a} {on_late}");
+    }
+
+    #[test]
     fn merging_is_transitive_and_numbered_by_first_unit() {
-        assert_eq!(merge_groups(5, [(3, 1), (4, 3)]), vec![0, 1, 2, 1, 1]);
+        assert_eq!(merge_groups(5, [(3, 1), (4, 3)], &[]), vec![0, 1, 2, 1, 1]);
+    }
+
+    #[test]
+    fn a_refused_pair_is_not_chained_together_through_a_third_unit() {
+        // 0–1 accepted first, then 1–2 would join 2 to 0, refused as a pair.
+        assert_eq!(merge_groups(3, [(0, 1), (1, 2)], &[(2, 0)]), vec![0, 0, 1]);
     }
 
     #[test]

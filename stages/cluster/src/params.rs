@@ -4,6 +4,7 @@ use crate::burst::BurstRules;
 use crate::echo::EchoRules;
 use crate::merge::MergeRules;
 use crate::model::Method;
+use crate::split::SplitRules;
 use serde::{Deserialize, Serialize};
 
 /// `[stage.params]` of the cluster stage, as written in the config.
@@ -27,6 +28,10 @@ pub struct ClusterParams {
     /// Larger unit counts are tried until this many in a row fail to lower
     /// the BIC; 0 tries every count up to max_units_per_channel. Default 2.
     pub bic_patience: usize,
+    /// A cluster whose spike amplitudes form two modes (Hartigan's dip test p
+    /// below this, each part holding at least a tenth of its spikes and
+    /// min_unit_spikes) is split in two before templates are made. Default 0.01.
+    pub split_dip_alpha: f64,
     /// Units closer than this (template positions, µm), and ... Default 40.
     pub merge_distance_um: f64,
     /// ... whose mean waveforms on shared electrodes, aligned within
@@ -91,6 +96,7 @@ impl Default for ClusterParams {
             fit_events_per_channel: 4000,
             runs: 3,
             bic_patience: 2,
+            split_dip_alpha: 0.01,
             merge_distance_um: 40.0,
             merge_min_correlation: 0.9,
             merge_min_amplitude_ratio: 0.6,
@@ -131,6 +137,7 @@ pub struct ValidClusterParams {
     pub merge_dip_alpha: f64,
     pub merge_max_shift_frames: usize,
     pub merge_test_spikes: usize,
+    pub split: SplitRules,
     pub burst: BurstRules,
     pub burst_min_amplitude_ratio: f64,
     pub echo: EchoRules,
@@ -174,6 +181,7 @@ impl ClusterParams {
         for (key, value) in [
             ("merge_min_amplitude_ratio", self.merge_min_amplitude_ratio),
             ("merge_dip_alpha", self.merge_dip_alpha),
+            ("split_dip_alpha", self.split_dip_alpha),
             ("burst_min_amplitude_ratio", self.burst_min_amplitude_ratio),
             ("echo_min_locked_fraction", self.echo_min_locked_fraction),
             ("echo_min_peak_share", self.echo_min_peak_share),
@@ -227,6 +235,7 @@ impl ClusterParams {
             merge_dip_alpha: self.merge_dip_alpha,
             merge_max_shift_frames,
             merge_test_spikes: self.merge_test_spikes,
+            split: SplitRules { alpha: self.split_dip_alpha, min_share: 0.1, min_spikes: self.min_unit_spikes },
             burst: BurstRules { max_isi_frames: burst_max_isi_frames, min_following: 0.8, max_followed: 0.4 },
             burst_min_amplitude_ratio: self.burst_min_amplitude_ratio,
             echo: EchoRules {
