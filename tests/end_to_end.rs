@@ -118,7 +118,12 @@ fn detection_on_the_default_scenario_finds_every_unit_above_five_sigma() {
         "{counts:?}\n{}",
         comparison.describe()
     );
-    let small = spikeyard::commands::read_small_units(&out.join("units.parquet")).unwrap();
+    let noise: Vec<i64> = spikeyard::commands::read_unit_labels(&out.join("units.parquet"))
+        .unwrap()
+        .into_iter()
+        .filter(|(_, label)| label == "noise")
+        .map(|(u, _)| u)
+        .collect();
     eprintln!("{}", comparison.describe());
 
     // Issue 4 (measures): the well-isolated units of the default scenario
@@ -136,8 +141,11 @@ fn detection_on_the_default_scenario_finds_every_unit_above_five_sigma() {
         f64s("firing_rate_hz"),
     );
     let l_ratio = f64s("l_ratio");
+    let labels = spikeyard::commands::read_unit_labels(&units_path).unwrap();
     for m in comparison.truth.iter().filter(|m| m.accuracy() >= 0.8) {
         let u = m.sorted_unit.unwrap() as usize;
+        // Issue 20: a well-sorted neuron is labelled a single unit.
+        assert_eq!(labels[u].1, "single", "unit {u}");
         assert!(snr.value(u) >= 5.0, "unit {u}: snr {}", snr.value(u));
         assert!(contamination.value(u) < 0.1, "unit {u}: contamination {}", contamination.value(u));
         assert!(presence.value(u) == 1.0, "unit {u}");
@@ -162,9 +170,9 @@ fn detection_on_the_default_scenario_finds_every_unit_above_five_sigma() {
 
     // Issue 7: the report page is well-formed, every figure parses, and the
     // expected figures are there: the array map, five per shown unit (the
-    // ten sorted units not flagged small), a latency map for the axon.
+    // sorted units not labelled noise), a latency map for the axon.
     let shown: Vec<i32> =
-        comparison.sorted_best_accuracy.keys().filter(|u| !small.contains(u)).map(|&u| u as i32).collect();
+        comparison.sorted_best_accuracy.keys().filter(|u| !noise.contains(u)).map(|&u| u as i32).collect();
     check_report(&out, &shown, &with_rows.iter().copied().collect::<Vec<_>>());
 }
 

@@ -247,10 +247,7 @@ fn main() -> anyhow::Result<()> {
                 format!("{found} of {} at accuracy ≥ 0.8, mean accuracy {mean:.3}", c.truth.len())
             };
             println!("\nsimulated units found: spikeyard {}; reference {}", summary(&ours), summary(&theirs));
-            println!(
-                "spikeyard's units (with those flagged small) found again in the reference's sorting: {}",
-                summary(&agreement)
-            );
+            println!("spikeyard's units (every one) found again in the reference's sorting: {}", summary(&agreement));
         }
     }
     Ok(())

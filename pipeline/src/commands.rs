@@ -299,18 +299,18 @@ pub fn compare(
     Ok(comparison)
 }
 
-/// Units flagged `small` in a units table.
+/// Each unit's label (`single`, `multi` or `noise`) in a measured units table.
 ///
 /// # Errors
 /// The table is missing or lacks the columns.
-pub fn read_small_units(path: &Path) -> anyhow::Result<Vec<i64>> {
-    let mut small = Vec::new();
+pub fn read_unit_labels(path: &Path) -> anyhow::Result<Vec<(i64, String)>> {
+    let mut labels = Vec::new();
     for batch in read_table(path)? {
         let ids: &Int32Array = column(path, &batch, "unit_id")?;
-        let flags: &arrow_array::BooleanArray = column(path, &batch, "small")?;
-        small.extend(ids.values().iter().zip(flags.iter()).filter(|(_, f)| *f == Some(true)).map(|(&u, _)| u as i64));
+        let names: &arrow_array::StringArray = column(path, &batch, "label")?;
+        labels.extend(ids.values().iter().zip(names.iter()).map(|(&u, l)| (u as i64, l.unwrap_or("").to_string())));
     }
-    Ok(small)
+    Ok(labels)
 }
 
 /// What `spikeyard check` found in a recording.
@@ -428,15 +428,16 @@ pub fn check(description: &Path) -> anyhow::Result<CheckReport> {
     Ok(CheckReport { text, clipped_fraction, non_finite, dead_channels, noisy_channels })
 }
 
-/// The units table as printed by the demo: one line per unit not flagged small.
+/// The units table as printed by the demo: one line per unit, with its label.
 ///
 /// # Errors
 /// The table is missing or lacks the columns.
 pub fn describe_units(path: &Path) -> anyhow::Result<String> {
     let mut text = format!(
-        "  sorted units not flagged small ({}):\n  {:>4} {:>7} {:>7} {:>8} {:>6} {:>8} {:>8} {:>8}\n",
+        "  sorted units ({}):\n  {:>4} {:>6} {:>7} {:>7} {:>8} {:>6} {:>8} {:>8} {:>8}\n",
         path.display(),
         "unit",
+        "label",
         "channel",
         "spikes",
         "rate Hz",
@@ -449,16 +450,17 @@ pub fn describe_units(path: &Path) -> anyhow::Result<String> {
         let ids: &Int32Array = column(path, &batch, "unit_id")?;
         let channels: &Int32Array = column(path, &batch, "channel")?;
         let counts: &Int64Array = column(path, &batch, "n_spikes")?;
-        let small: &arrow_array::BooleanArray = column(path, &batch, "small")?;
+        let labels: &arrow_array::StringArray = column(path, &batch, "label")?;
         let f = |name: &str| column::<Float64Array>(path, &batch, name).cloned();
         let (rate, snr, contamination, presence, l_ratio) =
             (f("firing_rate_hz")?, f("snr")?, f("contamination")?, f("presence_ratio")?, f("l_ratio")?);
-        for i in (0..batch.num_rows()).filter(|&i| !small.value(i)) {
+        for i in 0..batch.num_rows() {
             use arrow_array::Array;
             let l = if l_ratio.is_valid(i) { format!("{:.4}", l_ratio.value(i)) } else { "-".into() };
             text.push_str(&format!(
-                "  {:>4} {:>7} {:>7} {:>8.2} {:>6.1} {:>8.3} {:>8.2} {:>8}\n",
+                "  {:>4} {:>6} {:>7} {:>7} {:>8.2} {:>6.1} {:>8.3} {:>8.2} {:>8}\n",
                 ids.value(i),
+                labels.value(i),
                 channels.value(i),
                 counts.value(i),
                 rate.value(i),

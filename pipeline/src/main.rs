@@ -35,7 +35,7 @@ enum Command {
     Simulate {
         #[arg(long)]
         out: PathBuf,
-        /// sparse-grid or dense-axons.
+        /// sparse-grid, dense-axons, culture or dense-culture.
         #[arg(long, default_value = "sparse-grid")]
         scenario: String,
         #[arg(long, default_value_t = 60.0)]
@@ -47,6 +47,7 @@ enum Command {
     Demo {
         #[arg(long, default_value = "demo-out")]
         out: PathBuf,
+        /// sparse-grid, dense-axons, culture or dense-culture.
         #[arg(long, default_value = "sparse-grid")]
         scenario: String,
         #[arg(long, default_value_t = 60.0)]

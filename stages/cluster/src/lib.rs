@@ -36,7 +36,7 @@ pub mod params;
 pub mod split;
 
 use arrow_array::{
-    Array, ArrayRef, BooleanArray, FixedSizeListArray, Float32Array, Float64Array, Int32Array, Int64Array, RecordBatch,
+    Array, ArrayRef, FixedSizeListArray, Float32Array, Float64Array, Int32Array, Int64Array, RecordBatch,
 };
 use arrow_schema::{DataType, Field, Schema};
 use echo::Echo;
@@ -48,7 +48,7 @@ use spikeyard_contract::events::{channel_runs, for_each_event_window, ChannelRun
 use spikeyard_contract::sampling::keep;
 use spikeyard_contract::table::{column, for_each_batch, write_table, TableWriter};
 use spikeyard_contract::{ContractError, ProgressReporter, Recording, StageFailure, StageReport, StageRequest};
-use split::SplitRules;
+use split::Split;
 use std::path::Path;
 use std::sync::Arc;
 
@@ -118,14 +118,30 @@ pub struct GroupModel {
     /// Feature dimensions used (those that vary in the group).
     pub dims: Vec<usize>,
     pub mixture: Mixture,
+    /// Per component, its split when its spikes form two modes
+    /// ([`split::principal_split`]); the new parts are numbered after the
+    /// components, in component order.
+    pub splits: Vec<Option<Split>>,
     /// Number of the group's first unit among all groups' units.
     pub first_unit: usize,
 }
 
 impl GroupModel {
+    /// Units of the group: its components and their split-off parts.
+    pub fn n_units(&self) -> usize {
+        self.mixture.components.len() + self.splits.iter().flatten().count()
+    }
+
     fn unit_of(&self, row: &[f32]) -> usize {
         let x: Vec<f64> = self.dims.iter().map(|&d| row[d] as f64).collect();
-        self.first_unit + self.mixture.predict(&x)
+        let component = self.mixture.predict(&x);
+        match &self.splits[component] {
+            Some(split) if split.is_new_part(&x) => {
+                let before = self.splits[..component].iter().flatten().count();
+                self.first_unit + self.mixture.components.len() + before
+            }
+            _ => self.first_unit + component,
+        }
     }
 }
 
@@ -133,7 +149,7 @@ impl GroupModel {
 /// each group's fit is seeded by the group, so the thread count does not
 /// matter).
 pub fn fit_groups(fit_rows: &[Vec<Vec<f32>>], params: &ValidClusterParams, seed: u64) -> Vec<Option<GroupModel>> {
-    let fits: Vec<Option<(Vec<usize>, Mixture)>> = fit_rows
+    let mut models: Vec<Option<GroupModel>> = fit_rows
         .par_iter()
         .enumerate()
         .map(|(channel, rows)| {
@@ -168,19 +184,24 @@ pub fn fit_groups(fit_rows: &[Vec<Vec<f32>>], params: &ValidClusterParams, seed:
                 }],
                 bic: f64::NAN,
             });
-            Some((dims, mixture))
+            // A component whose fitting rows form two modes is two units.
+            let labels: Vec<usize> = data.iter().map(|x| mixture.predict(x)).collect();
+            let splits = (0..mixture.components.len())
+                .map(|c| {
+                    let rows: Vec<&[f64]> =
+                        data.iter().zip(&labels).filter(|(_, &l)| l == c).map(|(x, _)| x.as_slice()).collect();
+                    split::principal_split(&rows, &params.split)
+                })
+                .collect();
+            Some(GroupModel { dims, mixture, splits, first_unit: 0 })
         })
         .collect();
     let mut next_unit = 0;
-    fits.into_iter()
-        .map(|fit| {
-            fit.map(|(dims, mixture)| {
-                let first_unit = next_unit;
-                next_unit += mixture.components.len();
-                GroupModel { dims, mixture, first_unit }
-            })
-        })
-        .collect()
+    for model in models.iter_mut().flatten() {
+        model.first_unit = next_unit;
+        next_unit += model.n_units();
+    }
+    models
 }
 
 fn identity(d: usize) -> Vec<f64> {
@@ -279,34 +300,6 @@ fn measure_templates(
         .collect())
 }
 
-/// Split every cluster whose spike amplitudes form two modes
-/// ([`split::amplitude_boundary`]): the spikes above the boundary become a
-/// new cluster of the same electrode group. Returns the number of clusters.
-fn split_bimodal_clusters(spikes: &mut [Assigned], unit_group: &mut Vec<usize>, rules: &SplitRules) -> usize {
-    let n_units = unit_group.len();
-    let mut amplitudes: Vec<Vec<f64>> = vec![Vec::new(); n_units];
-    for s in spikes.iter() {
-        amplitudes[s.unit as usize].push(s.amplitude_uv as f64);
-    }
-    let boundaries: Vec<Option<f64>> = amplitudes.par_iter().map(|a| split::amplitude_boundary(a, rules)).collect();
-    let mut new_unit = vec![None; n_units];
-    for (unit, boundary) in boundaries.iter().enumerate() {
-        if boundary.is_some() {
-            new_unit[unit] = Some(unit_group.len());
-            unit_group.push(unit_group[unit]);
-        }
-    }
-    for s in spikes.iter_mut() {
-        let unit = s.unit as usize;
-        if let (Some(boundary), Some(new)) = (boundaries[unit], new_unit[unit]) {
-            if s.amplitude_uv as f64 > boundary {
-                s.unit = new as u32;
-            }
-        }
-    }
-    unit_group.len()
-}
-
 /// A candidate pair's projected spikes: unit a's, then unit b's.
 type Projected = (Vec<f64>, Vec<f64>);
 
@@ -321,7 +314,6 @@ fn project_on_axes(
     spikes: &[Assigned],
     templates: &[Template],
     candidates: &[Candidate],
-    n_units: usize,
     params: &ValidClusterParams,
     seed: u64,
     origin: &Path,
@@ -330,6 +322,7 @@ fn project_on_axes(
     if candidates.is_empty() {
         return Ok(projections);
     }
+    let n_units = templates.len();
     let mut counts = vec![0usize; n_units];
     for s in spikes {
         counts[s.unit as usize] += 1;
@@ -382,19 +375,24 @@ fn project_on_axes(
 /// are first thinned to the same share of each unit's spikes (`n_spikes`),
 /// so that the pair is tested in its real proportions: one neuron split by
 /// a boundary is two halves of one mode only when both halves weigh what
-/// they do. Under 8 spikes cannot tell (1: the templates' likeness decides).
-fn dip_p(projected: &Projected, n_spikes: (usize, usize)) -> f64 {
+/// they do. The test can only part the two units when the smaller holds at
+/// least a tenth of the values and `min_spikes` of them; below that (a
+/// mode of a few spikes is not the dip test's to find) it returns 1 and the
+/// templates' likeness decides, as the split rules do for a cluster.
+fn dip_p(projected: &Projected, n_spikes: (usize, usize), min_spikes: usize) -> f64 {
     let share = |values: &[f64], n: usize| values.len() as f64 / n.max(1) as f64;
     let common = share(&projected.0, n_spikes.0).min(share(&projected.1, n_spikes.1));
     let thin = |values: &[f64], n: usize| -> Vec<f64> {
         let keep = ((common * n as f64).round() as usize).min(values.len());
         (0..keep).map(|i| values[i * values.len() / keep.max(1)]).collect()
     };
-    let mut values = thin(&projected.0, n_spikes.0);
-    values.extend(thin(&projected.1, n_spikes.1));
-    if values.len() < 8 {
+    let (a, b) = (thin(&projected.0, n_spikes.0), thin(&projected.1, n_spikes.1));
+    let smaller = a.len().min(b.len());
+    if smaller < min_spikes.max(4) || (smaller as f64) < 0.1 * (a.len() + b.len()) as f64 {
         return 1.0;
     }
+    let mut values = a;
+    values.extend(b);
     values.sort_by(f64::total_cmp);
     dip::dip_test(&values).1
 }
@@ -433,15 +431,7 @@ fn burst_tail_pairs(
     trains: &[Vec<u64>],
     params: &ValidClusterParams,
 ) -> Vec<(usize, usize)> {
-    let n = templates.len();
-    let pairs: Vec<(usize, usize)> = (0..n)
-        .flat_map(|a| (a + 1..n).map(move |b| (a, b)))
-        .filter(|&(a, b)| {
-            let (sa, sb) = (&summaries[a], &summaries[b]);
-            (sa.x_um - sb.x_um).hypot(sa.y_um - sb.y_um) <= params.merge_distance_um
-        })
-        .collect();
-    pairs
+    merge::near_pairs(summaries, params.merge_distance_um)
         .into_par_iter()
         .filter_map(|(a, b)| {
             let (head, tail) = if summaries[a].trough_uv <= summaries[b].trough_uv { (a, b) } else { (b, a) };
@@ -615,7 +605,8 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     // 2. Fit every group.
     let models = fit_groups(&fit_rows, &valid, request.seed);
     drop(fit_rows);
-    let n_local_units = models.iter().flatten().map(|m| m.mixture.components.len()).sum::<usize>();
+    let n_local_units = models.iter().flatten().map(GroupModel::n_units).sum::<usize>();
+    let n_split = models.iter().flatten().map(|m| m.splits.iter().flatten().count()).sum::<usize>();
 
     // 3. Assign every event.
     let n_events: u64 = counts.iter().sum();
@@ -624,7 +615,7 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     let mut unit_group = vec![0usize; n_local_units];
     for (channel, model) in models.iter().enumerate() {
         if let Some(model) = model {
-            for u in 0..model.mixture.components.len() {
+            for u in 0..model.n_units() {
                 unit_group[model.first_unit + u] = channel;
             }
         }
@@ -653,10 +644,6 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
         Ok(())
     })?;
 
-    // 3b. A cluster whose amplitudes form two modes is two neurons.
-    let n_fitted_units = n_local_units;
-    let n_local_units = split_bimodal_clusters(&mut spikes, &mut unit_group, &valid.split);
-
     // 4. Templates of the local units.
     let electrodes = &recording.electrodes;
     let unit_channels: Vec<Vec<usize>> = unit_group
@@ -679,29 +666,24 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     let anchor = valid.template_before_frames as i64;
     let candidates =
         merge::candidate_pairs(&local_templates, &local_summaries, &unit_group, anchor, &valid.merge_rules());
-    let projections = project_on_axes(
-        &recording,
-        &spikes,
-        &local_templates,
-        &candidates,
-        n_local_units,
-        &valid,
-        request.seed,
-        &features_path,
-    )?;
+    let projections =
+        project_on_axes(&recording, &spikes, &local_templates, &candidates, &valid, request.seed, &features_path)?;
     // Most unimodal pairs first; a refused pair is never chained together.
     let mut local_counts = vec![0usize; n_local_units];
     spikes.iter().for_each(|s| local_counts[s.unit as usize] += 1);
     let mut tested: Vec<(f64, usize, usize)> = candidates
         .iter()
         .zip(&projections)
-        .map(|(c, projected)| (dip_p(projected, (local_counts[c.a], local_counts[c.b])), c.a, c.b))
+        .map(|(c, projected)| {
+            (dip_p(projected, (local_counts[c.a], local_counts[c.b]), valid.min_unit_spikes), c.a, c.b)
+        })
         .collect();
     tested.sort_by(|x, y| y.0.total_cmp(&x.0).then((x.1, x.2).cmp(&(y.1, y.2))));
     let accepted: Vec<(usize, usize)> =
         tested.iter().filter(|t| t.0 >= valid.merge_dip_alpha).map(|t| (t.1, t.2)).collect();
-    let refused: Vec<(usize, usize)> =
+    let mut refused: Vec<(usize, usize)> =
         tested.iter().filter(|t| t.0 < valid.merge_dip_alpha).map(|t| (t.1, t.2)).collect();
+    refused.extend(merge::apart_pairs(&local_templates, &local_summaries, &valid.merge_rules()));
     let by_dip = merge::merge_groups(n_local_units, accepted.iter().copied(), &refused);
     let n_by_dip = by_dip.iter().copied().max().map_or(0, |m| m + 1);
     // Then smaller units that fire only inside a larger one's bursts.
@@ -849,7 +831,6 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
             Field::new("peak_to_peak_uv", DataType::Float64, false),
             Field::new("n_channels", DataType::Int32, false),
             Field::new("merged_from", DataType::Int32, false),
-            Field::new("small", DataType::Boolean, false),
         ])),
         vec![
             Arc::new(Int32Array::from_iter_values((0..n_units).map(|id| id as i32))) as ArrayRef,
@@ -862,7 +843,6 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
             Arc::new(Float64Array::from_iter_values(by_id.iter().map(|&g| summaries[g].peak_to_peak_uv))),
             Arc::new(Int32Array::from_iter_values(by_id.iter().map(|&g| templates[g].channels.len() as i32))),
             Arc::new(Int32Array::from_iter_values(by_id.iter().map(|&g| merged_from[g] as i32))),
-            Arc::new(BooleanArray::from_iter((0..n_units).map(|id| Some((n_spikes[id] as usize) < valid.min_spikes)))),
         ],
     )
     .expect("unit columns match their schema");
@@ -904,11 +884,11 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
 
     let summary = &mut report.summary;
     summary.insert("units".into(), n_units.into());
-    summary.insert("clusters_fitted".into(), n_fitted_units.into());
-    summary.insert("clusters_split_by_amplitude".into(), (n_local_units - n_fitted_units).into());
+    summary.insert("clusters_split_in_two_modes".into(), n_split.into());
     summary.insert("units_before_merge".into(), n_local_units.into());
     summary.insert("merge_candidates".into(), candidates.len().into());
     summary.insert("merges_refused_as_two_modes".into(), (candidates.len() - accepted.len()).into());
+    summary.insert("pairs_apart_by_amplitude".into(), (refused.len() - (candidates.len() - accepted.len())).into());
     summary.insert("burst_tails_merged".into(), tails.len().into());
     summary.insert("units_after_merge".into(), n_merged.into());
     summary.insert("echo_units_folded".into(), echo_links.len().into());
@@ -919,7 +899,6 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     );
     summary.insert("fragments_unassigned".into(), (0..n_merged).filter(|&u| home[u].is_none()).count().into());
     summary.insert("events_unassigned".into(), unassigned.into());
-    summary.insert("small_units".into(), n_spikes.iter().filter(|&&n| (n as usize) < valid.min_spikes).count().into());
     summary.insert("spikes".into(), spikes.len().into());
     summary.insert("duplicates_dropped".into(), duplicates.into());
     Ok(report)

@@ -192,9 +192,38 @@ impl Candidate {
     }
 }
 
+/// A value at frame k computed from a's and b's rows on one electrode.
+type RowValue<'f> = dyn Fn(&[f64], &[f64], i64) -> f64 + 'f;
+
 /// Frames on each side of the spike's own sample that the axis leaves out
 /// on the electrodes the two units were detected on (see [`candidate_pairs`]).
 const DETECTION_GUARD_FRAMES: i64 = 2;
+
+/// Pairs of units within the merge distance whose templates have one
+/// shape but amplitudes too different for one neuron: never to be merged,
+/// not even through a third unit of middling amplitude.
+pub fn apart_pairs(templates: &[Template], summaries: &[TemplateSummary], rules: &MergeRules) -> Vec<(usize, usize)> {
+    near_pairs(summaries, rules.max_distance_um)
+        .into_iter()
+        .filter(|&(a, b)| {
+            align(&templates[a], &templates[b], rules.max_shift_frames).is_some_and(|alignment| {
+                alignment.correlation >= rules.min_correlation && alignment.amplitude_ratio < rules.min_amplitude_ratio
+            })
+        })
+        .collect()
+}
+
+/// Pairs (a < b) of units whose template positions are at most `max_distance_um` apart.
+pub fn near_pairs(summaries: &[TemplateSummary], max_distance_um: f64) -> Vec<(usize, usize)> {
+    let n = summaries.len();
+    (0..n)
+        .flat_map(|a| (a + 1..n).map(move |b| (a, b)))
+        .filter(|&(a, b)| {
+            let (sa, sb) = (&summaries[a], &summaries[b]);
+            (sa.x_um - sb.x_um).hypot(sa.y_um - sb.y_um) <= max_distance_um
+        })
+        .collect()
+}
 
 /// Every pair of units that [`MergeRules`] lets through, in order of (a, b).
 ///
@@ -211,14 +240,7 @@ pub fn candidate_pairs(
     anchor: i64,
     rules: &MergeRules,
 ) -> Vec<Candidate> {
-    let n = templates.len();
-    let pairs: Vec<(usize, usize)> = (0..n)
-        .flat_map(|a| (a + 1..n).map(move |b| (a, b)))
-        .filter(|&(a, b)| {
-            let (sa, sb) = (&summaries[a], &summaries[b]);
-            (sa.x_um - sb.x_um).hypot(sa.y_um - sb.y_um) <= rules.max_distance_um
-        })
-        .collect();
+    let pairs = near_pairs(summaries, rules.max_distance_um);
     pairs
         .into_iter()
         .filter_map(|(a, b)| {
@@ -230,7 +252,7 @@ pub fn candidate_pairs(
             let rows = visible_shared(ta, tb);
             let length = ta.values.first().map_or(0, Vec::len) as i64;
             let at = |row: &[f64], k: i64| if (0..length).contains(&k) { row[k as usize] } else { 0.0 };
-            let frame_major = |value: &dyn Fn(&[f64], &[f64], i64) -> f64| -> Vec<f64> {
+            let frame_major = |value: &RowValue| -> Vec<f64> {
                 (0..length).flat_map(|k| rows.iter().map(move |(_, ra, rb)| value(ra, rb, k))).collect()
             };
             let shift = alignment.shift;

@@ -28,9 +28,10 @@ pub struct ClusterParams {
     /// Larger unit counts are tried until this many in a row fail to lower
     /// the BIC; 0 tries every count up to max_units_per_channel. Default 2.
     pub bic_patience: usize,
-    /// A cluster whose spike amplitudes form two modes (Hartigan's dip test p
-    /// below this, each part holding at least a tenth of its spikes and
-    /// min_unit_spikes) is split in two before templates are made. Default 0.01.
+    /// A mixture component whose fitting events form two modes along its
+    /// first principal axis (Hartigan's dip test p below this, each part
+    /// holding at least a tenth of them and min_unit_spikes) is split in
+    /// two. Default 0.01.
     pub split_dip_alpha: f64,
     /// Units closer than this (template positions, µm), and ... Default 40.
     pub merge_distance_um: f64,
@@ -73,8 +74,6 @@ pub struct ClusterParams {
     pub min_unit_spikes: usize,
     /// Spikes of one unit closer than this are one spike counted twice; the later is dropped, ms. Default 0.3.
     pub duplicate_window_ms: f64,
-    /// Units with fewer spikes are flagged `small` in units.parquet. Default 30.
-    pub min_spikes: usize,
     /// Spikes per unit averaged into its template (a seeded random subset). Default 300.
     pub template_spikes: usize,
     /// Template window before and after the spike, ms. Defaults 1.0 and 2.0.
@@ -111,7 +110,6 @@ impl Default for ClusterParams {
             echo_min_peak_share: 0.5,
             min_unit_spikes: 10,
             duplicate_window_ms: 0.3,
-            min_spikes: 30,
             template_spikes: 300,
             template_before_ms: 1.0,
             template_after_ms: 2.0,
@@ -143,7 +141,6 @@ pub struct ValidClusterParams {
     pub echo: EchoRules,
     pub min_unit_spikes: usize,
     pub duplicate_frames: u64,
-    pub min_spikes: usize,
     pub template_spikes: usize,
     pub template_before_frames: usize,
     pub template_after_frames: usize,
@@ -247,7 +244,6 @@ impl ClusterParams {
             },
             min_unit_spikes: self.min_unit_spikes,
             duplicate_frames,
-            min_spikes: self.min_spikes,
             template_spikes: self.template_spikes,
             template_before_frames,
             template_after_frames,

@@ -17,12 +17,13 @@
 //!    `firing_rates.parquet` (per unit and time bin, with intervals and an
 //!    optional Gaussian-smoothed rate).
 
+pub mod label;
 pub mod metrics;
 pub mod params;
 pub mod stats;
 
 use arrow_array::{
-    Array, ArrayRef, FixedSizeListArray, Float32Array, Float64Array, Int32Array, Int64Array, RecordBatch,
+    Array, ArrayRef, FixedSizeListArray, Float32Array, Float64Array, Int32Array, Int64Array, RecordBatch, StringArray,
 };
 use arrow_schema::{DataType, Field, Schema};
 use params::MeasuresParams;
@@ -310,10 +311,26 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
             ]
         })
         .collect();
+    let rules = params.label_rules();
+    let labels: Vec<(&str, Option<String>)> = (0..n_units)
+        .map(|unit| {
+            let m = &per_unit[unit];
+            let inputs = label::LabelInputs {
+                snr: m[0],
+                contamination: m[4],
+                n_spikes: trains[unit].samples.len() as u64,
+                presence_ratio: m[5],
+                isolation_distance: isolation[unit].0,
+            };
+            label::label(&inputs, &rules)
+        })
+        .collect();
     let column_of = |k: usize| -> ArrayRef { Arc::new(Float64Array::from_iter_values(per_unit.iter().map(|m| m[k]))) };
     let mut fields: Vec<Field> = units.schema().fields().iter().map(|f| f.as_ref().clone()).collect();
     let mut columns: Vec<ArrayRef> = units.columns().to_vec();
-    let added: [(&str, ArrayRef); 12] = [
+    let added: [(&str, ArrayRef); 14] = [
+        ("label", Arc::new(StringArray::from_iter_values(labels.iter().map(|l| l.0)))),
+        ("label_reason", Arc::new(StringArray::from_iter(labels.iter().map(|l| l.1.as_deref())))),
         ("snr", column_of(0)),
         ("snr_peak_to_peak", column_of(1)),
         ("isi_violations", Arc::new(Int64Array::from_iter_values(per_unit.iter().map(|m| m[2] as i64)))),
@@ -331,7 +348,7 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
         fields.push(Field::new(
             name,
             array.data_type().clone(),
-            array.null_count() > 0 || name == "isolation_distance" || name == "l_ratio",
+            array.null_count() > 0 || ["isolation_distance", "l_ratio", "label_reason"].contains(&name),
         ));
         columns.push(array);
     }
@@ -396,6 +413,9 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     .expect("rate columns match their schema");
     write_table(&request.output(FIRING_RATES_TABLE), &rates_batch, &metadata)?;
     report.summary.insert("units".into(), n_units.into());
+    for name in ["single", "multi", "noise"] {
+        report.summary.insert(format!("units_{name}"), labels.iter().filter(|l| l.0 == name).count().into());
+    }
     report
         .summary
         .insert("units_with_isolation_distance".into(), isolation.iter().filter(|m| m.0.is_some()).count().into());

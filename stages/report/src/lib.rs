@@ -63,8 +63,17 @@ struct Unit {
     x_um: f64,
     y_um: f64,
     n_spikes: i64,
-    small: bool,
+    /// `single`, `multi` or `noise` (README); empty when the table has no labels.
+    label: String,
+    /// The label rules the unit failed.
+    label_reason: Option<String>,
     metrics: BTreeMap<&'static str, Option<f64>>,
+}
+
+impl Unit {
+    fn is_noise(&self) -> bool {
+        self.label == "noise"
+    }
 }
 
 /// The metrics shown in the units table, in order, with their headings.
@@ -160,14 +169,15 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     page.push_str(&head(&recording, request));
     page.push_str(&run_section(&recording, &stage_records(request)));
 
-    // Units, best first: not flagged small, then by SNR.
+    // Units, best first: single, then multi, then noise, each by SNR.
     let mut units: Vec<Unit> = Vec::new();
     let have_units = each_batch(request, "units.parquet", |path, batch| {
         let ids: &Int32Array = column(path, batch, "unit_id")?;
         let channels: &Int32Array = column(path, batch, "channel")?;
         let (x, y) = (floats(batch, "x_um"), floats(batch, "y_um"));
         let spikes = batch.column_by_name("n_spikes").and_then(|c| c.as_any().downcast_ref::<Int64Array>());
-        let small = batch.column_by_name("small").and_then(|c| c.as_any().downcast_ref::<BooleanArray>());
+        let labels = batch.column_by_name("label").and_then(|c| c.as_any().downcast_ref::<StringArray>());
+        let reasons = batch.column_by_name("label_reason").and_then(|c| c.as_any().downcast_ref::<StringArray>());
         let metric_values: Vec<Vec<Option<f64>>> = METRICS.iter().map(|(name, _)| floats(batch, name)).collect();
         for i in 0..batch.num_rows() {
             units.push(Unit {
@@ -176,15 +186,17 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
                 x_um: x[i].unwrap_or(f64::NAN),
                 y_um: y[i].unwrap_or(f64::NAN),
                 n_spikes: spikes.map_or(0, |s| s.value(i)),
-                small: small.is_some_and(|s| s.value(i)),
+                label: labels.map_or(String::new(), |l| l.value(i).to_string()),
+                label_reason: reasons.filter(|r| r.is_valid(i)).map(|r| r.value(i).to_string()),
                 metrics: METRICS.iter().zip(&metric_values).map(|((name, _), v)| (*name, v[i])).collect(),
             });
         }
         Ok(())
     })?;
     let snr = |u: &Unit| u.metrics["snr"].unwrap_or(f64::NEG_INFINITY);
-    units.sort_by(|a, b| a.small.cmp(&b.small).then(snr(b).total_cmp(&snr(a))).then(a.id.cmp(&b.id)));
-    let shown: Vec<&Unit> = units.iter().filter(|u| !u.small).take(params.max_units).collect();
+    let rank = |u: &Unit| ["single", "multi", "", "noise"].iter().position(|l| *l == u.label).unwrap_or(2);
+    units.sort_by(|a, b| rank(a).cmp(&rank(b)).then(snr(b).total_cmp(&snr(a))).then(a.id.cmp(&b.id)));
+    let shown: Vec<&Unit> = units.iter().filter(|u| !u.is_noise()).take(params.max_units).collect();
 
     page.push_str(&array_section(request, &recording, &units)?);
     page.push_str(&units_table(&units, have_units));
@@ -214,7 +226,7 @@ h1{font-size:22px;margin:0 0 4px}h2{font-size:17px;margin:26px 0 8px;padding-bot
 h3{font-size:14px;margin:0 0 6px}\
 table{border-collapse:collapse;font-size:12px}td,th{padding:2px 7px;text-align:right;border-bottom:1px solid #d9dcdf}\
 th{border-bottom:1.5px solid #1d232a}td.l,th.l{text-align:left}\
-tr.small td{color:#6b7178}\
+tr.unsure td{color:#6b7178}\
 .cards{display:flex;flex-wrap:wrap;gap:12px}\
 .card{border:1px solid #b9bec3;padding:8px 10px;background:#fff;break-inside:avoid;page-break-inside:avoid}\
 .figs{display:flex;flex-wrap:wrap;gap:6px}.note{color:#4a5058;font-size:12px}\
@@ -357,7 +369,7 @@ fn array_section(request: &StageRequest, recording: &Recording, units: &[Unit]) 
             );
         }
     }
-    let good: Vec<&Unit> = units.iter().filter(|u| !u.small && u.x_um.is_finite() && u.y_um.is_finite()).collect();
+    let good: Vec<&Unit> = units.iter().filter(|u| !u.is_noise() && u.x_um.is_finite() && u.y_um.is_finite()).collect();
     let label = good.len() <= 60;
     for u in &good {
         let (x, y) = frame.at(u.x_um, u.y_um);
@@ -395,7 +407,7 @@ fn array_section(request: &StageRequest, recording: &Recording, units: &[Unit]) 
     let counts = |name: &str| status.iter().filter(|s| *s == name).count();
     let _ = write!(
         s,
-        "<p>{} electrodes: {} dead, {} noisy; {} units not flagged small.</p>",
+        "<p>{} electrodes: {} dead, {} noisy; {} units not labelled noise.</p>",
         n,
         counts("dead"),
         counts("noisy"),
@@ -417,18 +429,22 @@ fn units_table(units: &[Unit], have_units: bool) -> String {
         s.push_str("<p class=\"note\">units.parquet is not among the inputs.</p></section>");
         return s;
     }
-    let (small, good): (Vec<&Unit>, Vec<&Unit>) = units.iter().partition(|u| u.small);
+    let (noise, good): (Vec<&Unit>, Vec<&Unit>) = units.iter().partition(|u| u.is_noise());
+    let count = |label: &str| good.iter().filter(|u| u.label == label).count();
     let _ = write!(
         s,
-        "<p>{} units, best first; {} more flagged small are listed folded below. Definitions of each measure: \
-         README, units.parquet.</p>",
+        "<p>{} units, best first: {} single (well isolated), {} multi (not well isolated: see why); {} more \
+         labelled noise (not a neuron) are listed folded below. Definitions of each measure and label: README, \
+         units.parquet.</p>",
         good.len(),
-        small.len()
+        count("single"),
+        count("multi"),
+        noise.len()
     );
     s.push_str(&metrics_table(&good));
-    if !small.is_empty() {
-        let _ = write!(s, "<details><summary>{} units flagged small</summary>", small.len());
-        s.push_str(&metrics_table(&small));
+    if !noise.is_empty() {
+        let _ = write!(s, "<details><summary>{} units labelled noise</summary>", noise.len());
+        s.push_str(&metrics_table(&noise));
         s.push_str("</details>");
     }
     s.push_str("</section>");
@@ -436,17 +452,18 @@ fn units_table(units: &[Unit], have_units: bool) -> String {
 }
 
 fn metrics_table(units: &[&Unit]) -> String {
-    let mut s = String::from("<table><tr><th>unit</th><th>electrode</th><th>spikes</th>");
+    let mut s = String::from("<table><tr><th>unit</th><th>label</th><th>electrode</th><th>spikes</th>");
     for (_, heading) in METRICS {
         let _ = write!(s, "<th>{}</th>", escape(heading));
     }
-    s.push_str("</tr>");
+    s.push_str("<th>label rules failed</th></tr>");
     for u in units {
         let _ = write!(
             s,
-            "<tr{}><td>{}</td><td>{}</td><td>{}</td>",
-            if u.small { " class=\"small\"" } else { "" },
+            "<tr{}><td>{}</td><td>{}</td><td>{}</td><td>{}</td>",
+            if u.label == "single" { "" } else { " class=\"unsure\"" },
             u.id,
+            escape(&u.label),
             u.channel,
             u.n_spikes
         );
@@ -454,7 +471,7 @@ fn metrics_table(units: &[&Unit]) -> String {
             let value = u.metrics[name].filter(|v| v.is_finite());
             let _ = write!(s, "<td>{}</td>", value.map_or("–".to_string(), |v| format!("{v:.3}")));
         }
-        s.push_str("</tr>");
+        let _ = write!(s, "<td>{}</td></tr>", escape(u.label_reason.as_deref().unwrap_or("")));
     }
     s.push_str("</table>");
     s
@@ -522,7 +539,7 @@ fn unit_sections(
     let mut s = String::from("<section id=\"unit-figures\"><h2>Units one by one</h2>");
     let _ = write!(
         s,
-        "<p class=\"note\">The {} best units not flagged small (by SNR). Waveforms: mean on the unit's largest electrodes, \
+        "<p class=\"note\">The {} best units not labelled noise (single first, then by SNR). Waveforms: mean on the unit's largest electrodes, \
          offset vertically; ISI histogram with the refractory period dashed; autocorrelogram; amplitude of each spike over \
          time (thinned); firing rate per bin with its exact Poisson 95 % band (grey).</p><div class=\"cards\">",
         shown.len()
