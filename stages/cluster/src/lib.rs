@@ -664,8 +664,8 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     // 5. Merge units that are one neuron: templates alike in shape and
     //    amplitude whose spikes form one mode on the axis between them.
     let anchor = valid.template_before_frames as i64;
-    let candidates =
-        merge::candidate_pairs(&local_templates, &local_summaries, &unit_group, anchor, &valid.merge_rules());
+    let merge::PairClasses { candidates, apart } =
+        merge::classify_pairs(&local_templates, &local_summaries, &unit_group, anchor, &valid.merge_rules());
     let projections =
         project_on_axes(&recording, &spikes, &local_templates, &candidates, &valid, request.seed, &features_path)?;
     // Most unimodal pairs first; a refused pair is never chained together.
@@ -683,7 +683,7 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
         tested.iter().filter(|t| t.0 >= valid.merge_dip_alpha).map(|t| (t.1, t.2)).collect();
     let mut refused: Vec<(usize, usize)> =
         tested.iter().filter(|t| t.0 < valid.merge_dip_alpha).map(|t| (t.1, t.2)).collect();
-    refused.extend(merge::apart_pairs(&local_templates, &local_summaries, &valid.merge_rules()));
+    refused.extend(apart);
     let by_dip = merge::merge_groups(n_local_units, accepted.iter().copied(), &refused);
     let n_by_dip = by_dip.iter().copied().max().map_or(0, |m| m + 1);
     // Then smaller units that fire only inside a larger one's bursts.

@@ -1,6 +1,7 @@
 //! Unit templates (mean waveforms), their summaries, and the merge of units
 //! that are one neuron split across neighbourhoods or by amplitude drift.
 
+use rayon::prelude::*;
 use spikeyard_contract::Electrode;
 
 /// Mean waveform of a unit on the electrodes near it.
@@ -156,11 +157,13 @@ pub struct Candidate {
     pub axis: Vec<f64>,
     /// Entries of the axis left out (detection electrodes near the sample).
     pub masked: Vec<bool>,
-    /// Orthonormal directions removed from the axis (the slopes).
+    /// Orthonormal directions removed from the axis (the slopes; zero
+    /// where masked).
     pub removed: Vec<Vec<f64>>,
-    /// a's and b's templates (b aligned), frame-major like the axis.
-    pub a_values: Vec<f64>,
-    pub b_values: Vec<f64>,
+    /// a's and b's templates (b aligned), frame-major like the axis, with
+    /// the masked entries and the removed directions taken out (P a, P b).
+    pub a_kept: Vec<f64>,
+    pub b_kept: Vec<f64>,
 }
 
 impl Candidate {
@@ -171,23 +174,32 @@ impl Candidate {
     /// made without it (leave one out): otherwise each spike leans towards
     /// its own unit's template by its own noise, and two halves of one
     /// neuron would look like two modes.
+    ///
+    /// With P the projection that drops the masked entries and the removed
+    /// directions (symmetric, idempotent) and w = P(a − b): the projection
+    /// is x·w, and leaving x out of a's template of n spikes adds
+    /// (x·Pa − x·Px)/(n − 1), where x·Px = |masked x|² − Σ (x·r)² over the
+    /// removed directions r. One pass over the waveform, no copy.
     pub fn projection(&self, waveform: &[f32], own: Option<(bool, usize)>) -> f64 {
-        let mut y: Vec<f64> =
-            waveform.iter().zip(&self.masked).map(|(&v, &m)| if m { 0.0 } else { v as f64 }).collect();
-        remove(&mut y, &self.removed);
-        let dot = |x: &[f64], z: &[f64]| x.iter().zip(z).map(|(p, q)| p * q).sum::<f64>();
-        let plain = dot(&y, &self.axis);
-        match own {
-            Some((is_b, n)) if n > 1 => {
-                let template = if is_b { &self.b_values } else { &self.a_values };
-                let correction = (dot(&y, template) - dot(&y, &y)) / (n - 1) as f64;
-                if is_b {
-                    plain - correction
-                } else {
-                    plain + correction
-                }
+        let (mut on_axis, mut on_a, mut on_b, mut kept_square) = (0.0, 0.0, 0.0, 0.0);
+        for (i, (&v, &masked)) in waveform.iter().zip(&self.masked).enumerate() {
+            if masked {
+                continue;
             }
-            _ => plain,
+            let v = v as f64;
+            on_axis += v * self.axis[i];
+            on_a += v * self.a_kept[i];
+            on_b += v * self.b_kept[i];
+            kept_square += v * v;
+        }
+        for r in &self.removed {
+            let along: f64 = waveform.iter().zip(r).map(|(&v, &r)| v as f64 * r).sum();
+            kept_square -= along * along;
+        }
+        match own {
+            Some((false, n)) if n > 1 => on_axis + (on_a - kept_square) / (n - 1) as f64,
+            Some((true, n)) if n > 1 => on_axis - (on_b - kept_square) / (n - 1) as f64,
+            _ => on_axis,
         }
     }
 }
@@ -196,22 +208,8 @@ impl Candidate {
 type RowValue<'f> = dyn Fn(&[f64], &[f64], i64) -> f64 + 'f;
 
 /// Frames on each side of the spike's own sample that the axis leaves out
-/// on the electrodes the two units were detected on (see [`candidate_pairs`]).
+/// on the electrodes the two units were detected on (see [`classify_pairs`]).
 const DETECTION_GUARD_FRAMES: i64 = 2;
-
-/// Pairs of units within the merge distance whose templates have one
-/// shape but amplitudes too different for one neuron: never to be merged,
-/// not even through a third unit of middling amplitude.
-pub fn apart_pairs(templates: &[Template], summaries: &[TemplateSummary], rules: &MergeRules) -> Vec<(usize, usize)> {
-    near_pairs(summaries, rules.max_distance_um)
-        .into_iter()
-        .filter(|&(a, b)| {
-            align(&templates[a], &templates[b], rules.max_shift_frames).is_some_and(|alignment| {
-                alignment.correlation >= rules.min_correlation && alignment.amplitude_ratio < rules.min_amplitude_ratio
-            })
-        })
-        .collect()
-}
 
 /// Pairs (a < b) of units whose template positions are at most `max_distance_um` apart.
 pub fn near_pairs(summaries: &[TemplateSummary], max_distance_um: f64) -> Vec<(usize, usize)> {
@@ -225,7 +223,19 @@ pub fn near_pairs(summaries: &[TemplateSummary], max_distance_um: f64) -> Vec<(u
         .collect()
 }
 
-/// Every pair of units that [`MergeRules`] lets through, in order of (a, b).
+/// What the templates say of the pairs of units within the merge distance.
+#[derive(Debug, Clone, PartialEq)]
+pub struct PairClasses {
+    /// Pairs that [`MergeRules`] lets through, in order of (a, b), to be tested.
+    pub candidates: Vec<Candidate>,
+    /// Pairs of one shape but amplitudes too different for one neuron:
+    /// never to be merged, not even through a third unit of middling
+    /// amplitude.
+    pub apart: Vec<(usize, usize)>,
+}
+
+/// Sort the pairs of units within the merge distance into candidates
+/// (with the axis each is tested on) and pairs kept apart.
 ///
 /// `detected_on` is each unit's detection electrode and `anchor` the frame
 /// of the spike's own sample in a template. When two units were detected
@@ -233,59 +243,80 @@ pub fn near_pairs(summaries: &[TemplateSummary], max_distance_um: f64) -> Vec<(u
 /// ±2 frames of each unit's sample: there every spike carries the noise
 /// that made its electrode win and marked its sample, which would part
 /// one neuron's spikes by where they were detected.
-pub fn candidate_pairs(
+pub fn classify_pairs(
     templates: &[Template],
     summaries: &[TemplateSummary],
     detected_on: &[usize],
     anchor: i64,
     rules: &MergeRules,
-) -> Vec<Candidate> {
-    let pairs = near_pairs(summaries, rules.max_distance_um);
-    pairs
-        .into_iter()
-        .filter_map(|(a, b)| {
-            let alignment = align(&templates[a], &templates[b], rules.max_shift_frames)?;
-            if alignment.correlation < rules.min_correlation || alignment.amplitude_ratio < rules.min_amplitude_ratio {
-                return None;
-            }
-            let (ta, tb) = (&templates[a], &templates[b]);
-            let rows = visible_shared(ta, tb);
-            let length = ta.values.first().map_or(0, Vec::len) as i64;
-            let at = |row: &[f64], k: i64| if (0..length).contains(&k) { row[k as usize] } else { 0.0 };
-            let frame_major = |value: &RowValue| -> Vec<f64> {
-                (0..length).flat_map(|k| rows.iter().map(move |(_, ra, rb)| value(ra, rb, k))).collect()
-            };
-            let shift = alignment.shift;
-            let mut axis = frame_major(&|ra, rb, k| at(ra, k) - at(rb, k + shift));
-            // Without the two waveforms' slopes: a spike's timing jitter
-            // (which electrode's sample marked it) moves it along the slope,
-            // and would part one neuron's spikes in two.
-            let mut slope_a = frame_major(&|ra, _, k| 0.5 * (at(ra, k + 1) - at(ra, k - 1)));
-            let mut slope_b = frame_major(&|_, rb, k| 0.5 * (at(rb, k + shift + 1) - at(rb, k + shift - 1)));
-            if detected_on[a] != detected_on[b] {
-                for (p, (channel, _, _)) in rows.iter().enumerate() {
-                    if *channel != detected_on[a] && *channel != detected_on[b] {
-                        continue;
-                    }
-                    for centre in [anchor, anchor - shift] {
-                        for k in (centre - DETECTION_GUARD_FRAMES)..=(centre + DETECTION_GUARD_FRAMES) {
-                            if (0..length).contains(&k) {
-                                let i = k as usize * rows.len() + p;
-                                (axis[i], slope_a[i], slope_b[i]) = (0.0, 0.0, 0.0);
-                            }
-                        }
-                    }
+) -> PairClasses {
+    let classes: Vec<(Option<Candidate>, Option<(usize, usize)>)> = near_pairs(summaries, rules.max_distance_um)
+        .into_par_iter()
+        .map(|(a, b)| match align(&templates[a], &templates[b], rules.max_shift_frames) {
+            Some(alignment) if alignment.correlation >= rules.min_correlation => {
+                if alignment.amplitude_ratio < rules.min_amplitude_ratio {
+                    (None, Some((a, b)))
+                } else {
+                    (Some(candidate(templates, detected_on, anchor, a, b, alignment)), None)
                 }
             }
-            let masked: Vec<bool> = slope_a.iter().zip(&axis).map(|(&s, &w)| s == 0.0 && w == 0.0).collect();
-            let removed = orthonormal_basis(&[slope_a, slope_b]);
-            remove(&mut axis, &removed);
-            let a_values = frame_major(&|ra, _, k| at(ra, k));
-            let b_values = frame_major(&|_, rb, k| at(rb, k + shift));
-            let channels = rows.iter().map(|r| r.0).collect();
-            Some(Candidate { a, b, alignment, channels, axis, masked, removed, a_values, b_values })
+            _ => (None, None),
         })
-        .collect()
+        .collect();
+    let (candidates, apart): (Vec<_>, Vec<_>) = classes.into_iter().unzip();
+    PairClasses { candidates: candidates.into_iter().flatten().collect(), apart: apart.into_iter().flatten().collect() }
+}
+
+/// The candidate pair (a, b) with its axis.
+fn candidate(
+    templates: &[Template],
+    detected_on: &[usize],
+    anchor: i64,
+    a: usize,
+    b: usize,
+    alignment: Alignment,
+) -> Candidate {
+    let (ta, tb) = (&templates[a], &templates[b]);
+    let rows = visible_shared(ta, tb);
+    let length = ta.values.first().map_or(0, Vec::len) as i64;
+    let at = |row: &[f64], k: i64| if (0..length).contains(&k) { row[k as usize] } else { 0.0 };
+    let frame_major = |value: &RowValue| -> Vec<f64> {
+        (0..length).flat_map(|k| rows.iter().map(move |(_, ra, rb)| value(ra, rb, k))).collect()
+    };
+    let shift = alignment.shift;
+    let mut masked = vec![false; length as usize * rows.len()];
+    if detected_on[a] != detected_on[b] {
+        for (p, (channel, _, _)) in rows.iter().enumerate() {
+            if *channel != detected_on[a] && *channel != detected_on[b] {
+                continue;
+            }
+            for centre in [anchor, anchor - shift] {
+                for k in (centre - DETECTION_GUARD_FRAMES).max(0)..=(centre + DETECTION_GUARD_FRAMES).min(length - 1) {
+                    masked[k as usize * rows.len() + p] = true;
+                }
+            }
+        }
+    }
+    let unmasked = |mut values: Vec<f64>| {
+        values.iter_mut().zip(&masked).filter(|(_, &m)| m).for_each(|(v, _)| *v = 0.0);
+        values
+    };
+    // Without the two waveforms' slopes: a spike's timing jitter (which
+    // electrode's sample marked it) moves it along the slope, and would
+    // part one neuron's spikes in two.
+    let slope_a = unmasked(frame_major(&|ra, _, k| 0.5 * (at(ra, k + 1) - at(ra, k - 1))));
+    let slope_b = unmasked(frame_major(&|_, rb, k| 0.5 * (at(rb, k + shift + 1) - at(rb, k + shift - 1))));
+    let removed = orthonormal_basis(&[slope_a, slope_b]);
+    let kept = |values: Vec<f64>| {
+        let mut values = unmasked(values);
+        remove(&mut values, &removed);
+        values
+    };
+    let axis = kept(frame_major(&|ra, rb, k| at(ra, k) - at(rb, k + shift)));
+    let a_kept = kept(frame_major(&|ra, _, k| at(ra, k)));
+    let b_kept = kept(frame_major(&|_, rb, k| at(rb, k + shift)));
+    let channels = rows.iter().map(|r| r.0).collect();
+    Candidate { a, b, alignment, channels, axis, masked, removed, a_kept, b_kept }
 }
 
 /// An orthonormal basis of `directions` (Gram–Schmidt; negligible ones are skipped).
@@ -408,10 +439,8 @@ mod tests {
         let summaries: Vec<_> = templates.iter().map(|t| t.summarise(&electrodes())).collect();
         let rules = MergeRules { max_distance_um, min_correlation: 0.9, min_amplitude_ratio: 0.6, max_shift_frames: 3 };
         let detected_on = vec![0; templates.len()];
-        candidate_pairs(templates, &summaries, &detected_on, 5, &rules)
-            .iter()
-            .map(|c| (c.a, c.b, c.alignment.shift))
-            .collect()
+        let classes = classify_pairs(templates, &summaries, &detected_on, 5, &rules);
+        classes.candidates.iter().map(|c| (c.a, c.b, c.alignment.shift)).collect()
     }
 
     #[test]
@@ -424,6 +453,12 @@ mod tests {
             template(&[0, 1, 2], 15.0, 0),
         ];
         assert_eq!(candidates(&templates, 40.0), vec![(0, 1, 0), (0, 2, 2), (1, 2, 2)]);
+        // Unit 3 has unit 0's shape at a third of its size: kept apart from 0 (and the others).
+        let summaries: Vec<_> = templates.iter().map(|t| t.summarise(&electrodes())).collect();
+        let rules =
+            MergeRules { max_distance_um: 40.0, min_correlation: 0.9, min_amplitude_ratio: 0.6, max_shift_frames: 3 };
+        let apart = classify_pairs(&templates, &summaries, &[0; 4], 5, &rules).apart;
+        assert_eq!(apart, vec![(0, 3), (1, 3), (2, 3)]);
         // Too far apart: no candidate even with the same shape.
         assert!(candidates(&templates, 5.0).is_empty());
     }
@@ -445,7 +480,7 @@ mod tests {
         let summaries: Vec<_> = [&a, &b].iter().map(|t| t.summarise(&electrodes())).collect();
         let rules =
             MergeRules { max_distance_um: 40.0, min_correlation: 0.9, min_amplitude_ratio: 0.5, max_shift_frames: 0 };
-        let candidate = &candidate_pairs(&[a.clone(), b], &summaries, &[0, 0], 5, &rules)[0];
+        let candidate = &classify_pairs(&[a.clone(), b], &summaries, &[0, 0], 5, &rules).candidates[0];
         let waveform: Vec<f64> = (0..16).flat_map(|k| [a.values[0][k], a.values[1][k]]).collect();
         let dot = |x: &[f64], y: &[f64]| x.iter().zip(y).map(|(p, q)| p * q).sum::<f64>();
         let cosine = dot(&candidate.axis, &waveform)
@@ -460,6 +495,52 @@ mod tests {
             .collect();
         let (on_a, on_late) = (dot(&candidate.axis, &waveform), dot(&candidate.axis, &late));
         assert!((on_a - on_late).abs() < 0.02 * on_a.abs(), "{on_a} {on_late}");
+    }
+
+    // The one-pass leave-one-out projection against the plain computation:
+    // mask, remove the slopes, rebuild a's template without the spike, and
+    // project on the difference (detected on different electrodes, shifted).
+    #[test]
+    fn leave_one_out_projection_matches_the_plain_computation() {
+        let mut rng = spikeyard_contract::testing::TestRng::new(8);
+        let mut a = template(&[0, 1, 2], 40.0, 0);
+        let mut b = template(&[0, 1, 2], 36.0, 1);
+        for row in a.values.iter_mut().chain(b.values.iter_mut()) {
+            row.iter_mut().for_each(|v| *v += rng.normal());
+        }
+        let summaries: Vec<_> = [&a, &b].iter().map(|t| t.summarise(&electrodes())).collect();
+        let rules =
+            MergeRules { max_distance_um: 40.0, min_correlation: 0.8, min_amplitude_ratio: 0.5, max_shift_frames: 2 };
+        let c = &classify_pairs(&[a.clone(), b.clone()], &summaries, &[0, 1], 5, &rules).candidates[0];
+        assert!(c.masked.iter().any(|&m| m) && c.removed.len() == 2);
+        let waveform: Vec<f32> = (0..c.axis.len()).map(|_| (10.0 * rng.normal()) as f32).collect();
+        let project = |v: &[f64]| -> Vec<f64> {
+            let mut v: Vec<f64> = v.iter().zip(&c.masked).map(|(&x, &m)| if m { 0.0 } else { x }).collect();
+            remove(&mut v, &c.removed);
+            v
+        };
+        let x: Vec<f64> = waveform.iter().map(|&v| v as f64).collect();
+        let a_raw: Vec<f64> = (0..16).flat_map(|k| a.values.iter().map(move |row| row[k])).collect();
+        let b_raw: Vec<f64> = (0..16i64)
+            .flat_map(|k| {
+                b.values.iter().map(move |row| {
+                    if (0..16).contains(&(k + c.alignment.shift)) {
+                        row[(k + c.alignment.shift) as usize]
+                    } else {
+                        0.0
+                    }
+                })
+            })
+            .collect();
+        let n = 7usize;
+        let a_without: Vec<f64> = a_raw.iter().zip(&x).map(|(t, v)| (n as f64 * t - v) / (n - 1) as f64).collect();
+        let axis = project(&a_without.iter().zip(&b_raw).map(|(p, q)| p - q).collect::<Vec<_>>());
+        let expected: f64 = x.iter().zip(&axis).map(|(p, q)| p * q).sum();
+        let got = c.projection(&waveform, Some((false, n)));
+        assert!((got - expected).abs() < 1e-9 * expected.abs().max(1.0), "{got} vs {expected}");
+        // Without leaving out, it is the plain dot with the axis.
+        let plain: f64 = x.iter().zip(&c.axis).map(|(p, q)| p * q).sum();
+        assert!((c.projection(&waveform, None) - plain).abs() < 1e-9 * plain.abs().max(1.0));
     }
 
     #[test]
