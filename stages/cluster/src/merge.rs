@@ -250,21 +250,33 @@ pub fn classify_pairs(
     anchor: i64,
     rules: &MergeRules,
 ) -> PairClasses {
-    let classes: Vec<(Option<Candidate>, Option<(usize, usize)>)> = near_pairs(summaries, rules.max_distance_um)
+    enum Class {
+        Candidate(Box<Candidate>),
+        Apart(usize, usize),
+        Unlike,
+    }
+    let classes: Vec<Class> = near_pairs(summaries, rules.max_distance_um)
         .into_par_iter()
         .map(|(a, b)| match align(&templates[a], &templates[b], rules.max_shift_frames) {
             Some(alignment) if alignment.correlation >= rules.min_correlation => {
                 if alignment.amplitude_ratio < rules.min_amplitude_ratio {
-                    (None, Some((a, b)))
+                    Class::Apart(a, b)
                 } else {
-                    (Some(candidate(templates, detected_on, anchor, a, b, alignment)), None)
+                    Class::Candidate(Box::new(candidate(templates, detected_on, anchor, a, b, alignment)))
                 }
             }
-            _ => (None, None),
+            _ => Class::Unlike,
         })
         .collect();
-    let (candidates, apart): (Vec<_>, Vec<_>) = classes.into_iter().unzip();
-    PairClasses { candidates: candidates.into_iter().flatten().collect(), apart: apart.into_iter().flatten().collect() }
+    let mut classified = PairClasses { candidates: Vec::new(), apart: Vec::new() };
+    for class in classes {
+        match class {
+            Class::Candidate(c) => classified.candidates.push(*c),
+            Class::Apart(a, b) => classified.apart.push((a, b)),
+            Class::Unlike => {}
+        }
+    }
+    classified
 }
 
 /// The candidate pair (a, b) with its axis.
