@@ -324,9 +324,7 @@ fn project_on_axes(
     }
     let n_units = templates.len();
     let mut counts = vec![0usize; n_units];
-    for s in spikes {
-        counts[s.unit as usize] += 1;
-    }
+    spikes.iter().for_each(|s| counts[s.unit as usize] += 1);
     let mut tested = vec![false; n_units];
     for c in candidates {
         tested[c.a] = true;
@@ -439,8 +437,7 @@ fn burst_tail_pairs(
                 return None;
             }
             let alignment = merge::align(&templates[head], &templates[tail], params.merge_max_shift_frames)?;
-            (alignment.correlation >= params.merge_min_correlation
-                && alignment.amplitude_ratio >= params.burst_min_amplitude_ratio)
+            (params.merge_rules().alike(&alignment) && alignment.amplitude_ratio >= params.burst_min_amplitude_ratio)
                 .then_some((head, tail))
         })
         .collect()
@@ -449,8 +446,8 @@ fn burst_tail_pairs(
 /// Fold each echo unit's spikes into its source: a spike with a source
 /// spike at the echo's lag (± `jitter_frames`) is that spike seen again and
 /// is dropped; the others move to the source at the source's time (the
-/// spike's time minus the lag, within the recording's `n_frames`). Returns the spikes dropped; `spikes` stay in
-/// sample order.
+/// spike's time minus the lag, within the recording's `n_frames`).
+/// Returns the spikes dropped; `spikes` stay in sample order.
 fn fold_echoes(spikes: &mut Vec<Assigned>, folded: &[Option<Echo>], jitter_frames: u64, n_frames: u64) -> usize {
     let mut trains: Vec<Vec<u64>> = vec![Vec::new(); folded.len()];
     for s in spikes.iter() {
@@ -495,14 +492,9 @@ fn settle_fragments(
             }
             (0..n)
                 .filter(|&v| v != u && whole(v))
-                .filter(|&v| {
-                    let (a, b) = (&summaries[u], &summaries[v]);
-                    (a.x_um - b.x_um).hypot(a.y_um - b.y_um) <= rules.max_distance_um
-                })
+                .filter(|&v| summaries[u].distance_um(&summaries[v]) <= rules.max_distance_um)
                 .filter_map(|v| merge::align(&templates[v], &templates[u], rules.max_shift_frames).map(|a| (v, a)))
-                .filter(|(_, a)| {
-                    a.correlation >= rules.min_correlation && a.amplitude_ratio >= rules.min_amplitude_ratio
-                })
+                .filter(|(_, a)| rules.accepts(a))
                 .max_by(|x, y| x.1.correlation.total_cmp(&y.1.correlation).then(y.0.cmp(&x.0)))
                 .map(|(v, _)| v)
         })
@@ -666,11 +658,11 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     let anchor = valid.template_before_frames as i64;
     let merge::PairClasses { candidates, apart } =
         merge::classify_pairs(&local_templates, &local_summaries, &unit_group, anchor, &valid.merge_rules());
+    let mut local_counts = vec![0usize; n_local_units];
+    spikes.iter().for_each(|s| local_counts[s.unit as usize] += 1);
     let projections =
         project_on_axes(&recording, &spikes, &local_templates, &candidates, &valid, request.seed, &features_path)?;
     // Most unimodal pairs first; a refused pair is never chained together.
-    let mut local_counts = vec![0usize; n_local_units];
-    spikes.iter().for_each(|s| local_counts[s.unit as usize] += 1);
     let mut tested: Vec<(f64, usize, usize)> = candidates
         .iter()
         .zip(&projections)
@@ -683,6 +675,7 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
         tested.iter().filter(|t| t.0 >= valid.merge_dip_alpha).map(|t| (t.1, t.2)).collect();
     let mut refused: Vec<(usize, usize)> =
         tested.iter().filter(|t| t.0 < valid.merge_dip_alpha).map(|t| (t.1, t.2)).collect();
+    let (n_refused_by_dip, n_apart) = (refused.len(), apart.len());
     refused.extend(apart);
     let by_dip = merge::merge_groups(n_local_units, accepted.iter().copied(), &refused);
     let n_by_dip = by_dip.iter().copied().max().map_or(0, |m| m + 1);
@@ -736,8 +729,7 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     let unassigned = before_fragments - spikes.len();
 
     // 8. Number units by main electrode and amplitude.
-    let kept: Vec<usize> = (0..n_merged).filter(|&u| home[u] == Some(u)).collect();
-    let mut order = kept.clone();
+    let mut order: Vec<usize> = (0..n_merged).filter(|&u| home[u] == Some(u)).collect();
     order.sort_by(|&a, &b| {
         summaries[a]
             .channel
@@ -887,8 +879,8 @@ pub fn run(request: &StageRequest) -> Result<StageReport, StageFailure> {
     summary.insert("clusters_split_in_two_modes".into(), n_split.into());
     summary.insert("units_before_merge".into(), n_local_units.into());
     summary.insert("merge_candidates".into(), candidates.len().into());
-    summary.insert("merges_refused_as_two_modes".into(), (candidates.len() - accepted.len()).into());
-    summary.insert("pairs_apart_by_amplitude".into(), (refused.len() - (candidates.len() - accepted.len())).into());
+    summary.insert("merges_refused_as_two_modes".into(), n_refused_by_dip.into());
+    summary.insert("pairs_apart_by_amplitude".into(), n_apart.into());
     summary.insert("burst_tails_merged".into(), tails.len().into());
     summary.insert("units_after_merge".into(), n_merged.into());
     summary.insert("echo_units_folded".into(), echo_links.len().into());

@@ -27,14 +27,20 @@ pub struct TemplateSummary {
     pub y_um: f64,
 }
 
+impl TemplateSummary {
+    /// Distance between two templates' positions, µm.
+    pub fn distance_um(&self, other: &TemplateSummary) -> f64 {
+        (self.x_um - other.x_um).hypot(self.y_um - other.y_um)
+    }
+}
+
 impl Template {
     pub fn summarise(&self, electrodes: &[Electrode]) -> TemplateSummary {
         let troughs: Vec<f64> = self.values.iter().map(|row| row.iter().copied().fold(0.0, f64::min)).collect();
         let (best, trough_uv) =
             troughs.iter().enumerate().fold((0, 0.0), |b, (i, &t)| if t < b.1 { (i, t) } else { b });
         let row = &self.values[best];
-        let peak_to_peak_uv =
-            row.iter().copied().fold(f64::MIN, f64::max) - row.iter().copied().fold(f64::MAX, f64::min);
+        let peak_to_peak_uv = peak_to_peak(row);
         // Electrodes with at least a fifth of the deepest trough weigh in, so
         // that noise on far electrodes does not pull the position.
         let (mut x, mut y, mut total) = (0.0, 0.0, 0.0);
@@ -141,6 +147,18 @@ pub struct MergeRules {
     pub max_shift_frames: usize,
 }
 
+impl MergeRules {
+    /// Whether an alignment has the shape of one neuron (correlation).
+    pub fn alike(&self, alignment: &Alignment) -> bool {
+        alignment.correlation >= self.min_correlation
+    }
+
+    /// Whether it has both the shape and the amplitude of one neuron.
+    pub fn accepts(&self, alignment: &Alignment) -> bool {
+        self.alike(alignment) && alignment.amplitude_ratio >= self.min_amplitude_ratio
+    }
+}
+
 /// A pair of units whose templates pass [`MergeRules`], with the axis on
 /// which their spikes are compared before they are merged.
 #[derive(Debug, Clone, PartialEq)]
@@ -216,10 +234,7 @@ pub fn near_pairs(summaries: &[TemplateSummary], max_distance_um: f64) -> Vec<(u
     let n = summaries.len();
     (0..n)
         .flat_map(|a| (a + 1..n).map(move |b| (a, b)))
-        .filter(|&(a, b)| {
-            let (sa, sb) = (&summaries[a], &summaries[b]);
-            (sa.x_um - sb.x_um).hypot(sa.y_um - sb.y_um) <= max_distance_um
-        })
+        .filter(|&(a, b)| summaries[a].distance_um(&summaries[b]) <= max_distance_um)
         .collect()
 }
 
@@ -258,13 +273,10 @@ pub fn classify_pairs(
     let classes: Vec<Class> = near_pairs(summaries, rules.max_distance_um)
         .into_par_iter()
         .map(|(a, b)| match align(&templates[a], &templates[b], rules.max_shift_frames) {
-            Some(alignment) if alignment.correlation >= rules.min_correlation => {
-                if alignment.amplitude_ratio < rules.min_amplitude_ratio {
-                    Class::Apart(a, b)
-                } else {
-                    Class::Candidate(Box::new(candidate(templates, detected_on, anchor, a, b, alignment)))
-                }
+            Some(alignment) if rules.accepts(&alignment) => {
+                Class::Candidate(Box::new(candidate(templates, detected_on, anchor, a, b, alignment)))
             }
+            Some(alignment) if rules.alike(&alignment) => Class::Apart(a, b),
             _ => Class::Unlike,
         })
         .collect();
